@@ -1,0 +1,209 @@
+"""Streaming polyphase analysis (channelizer) and synthesis banks.
+
+Conventions, used by every part of bandloom and every test
+----------------------------------------------------------
+* Samples are complex baseband IQ. Indices are absolute and start at 0: sample
+  0 is the first sample ever given to ``process``; samples before it are 0.
+* ``M`` channels, decimation/interpolation ``D`` (``D`` divides ``M``;
+  ``M // D`` is the oversampling factor, 1 = critically sampled).
+* Analysis, with prototype low-pass taps ``h[0 .. L-1]`` (real)::
+
+      y[n, k] = sum_i h[i] * x[n*D - i] * exp(-2j*pi*k*(n*D - i)/M)
+
+  i.e. mix channel ``k`` down to baseband, low-pass with ``h``, keep every
+  D-th sample starting with sample 0. This is exactly
+  ``scipy.signal.upfirdn(h, x * exp(-2j*pi*k*m/M), up=1, down=D)``.
+  Because the mixing uses absolute time, frame ``n`` needs samples up to
+  ``n*D``: after ``N`` input samples, ``ceil(N / D)`` frames exist.
+* Channel ``k`` (FFT order) is centred at ``+k/M`` cycles per input sample for
+  ``k < M/2`` and ``(k - M)/M`` for ``k >= M/2`` (``numpy.fft.fftfreq(M)``);
+  positive offsets are above the stream's centre frequency. Its rate is
+  ``1/D`` of the input rate.
+* Synthesis, with taps ``g[0 .. L-1]`` (real; any scale folded into ``g``)::
+
+      x_hat[m] = sum_k exp(+2j*pi*k*m/M) * sum_n Y[n, k] * g[m - n*D]
+
+  i.e. upsample each channel by ``D``, filter with ``g``, mix up, sum. After
+  ``F`` frames, ``F*D`` output samples are complete and returned.
+* Streaming is chunk-invariant: any chunking of the same input gives the same
+  output as one call.
+
+Implementation: per output frame, the last ``L`` input samples are weighted by
+the reversed taps and folded by absolute index modulo ``M`` (the polyphase
+sum), then one M-point FFT. Synthesis is the mirror: one inverse FFT per
+frame, then a weighted periodic overlap-add. The hot loops run in numba
+(``kernel="fast"``, complex64 arithmetic) or in plain numpy
+(``kernel="reference"``, float64 arithmetic, results rounded to complex64).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.fft
+
+from . import _polyphase_fast, _polyphase_reference
+
+_KERNELS = {"fast": _polyphase_fast, "reference": _polyphase_reference}
+_KERNEL_DTYPES = {"fast": np.complex64, "reference": np.complex128}
+
+
+def _check_geometry(channels, step, step_name):
+    if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
+        raise ValueError(f"Parameter channels={channels!r} is not an integer >= 2!")
+    if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 1:
+        raise ValueError(f"Parameter {step_name}={step!r} is not an integer >= 1!")
+    if channels % step:
+        raise ValueError(
+            f"Parameter {step_name}={step} does not divide channels={channels}; "
+            f"choose one of {[d for d in range(1, channels + 1) if channels % d == 0]}!")
+    return int(channels), int(step)
+
+
+def _check_taps(taps):
+    array = np.asarray(taps)
+    if array.ndim != 1 or array.size == 0:
+        raise ValueError(f"Parameter taps must be a non-empty 1-D array, got shape {array.shape}!")
+    if np.iscomplexobj(array):
+        raise ValueError("Parameter taps must be real; complex prototypes are not supported!")
+    array = array.astype(np.float64)
+    if not np.all(np.isfinite(array)):
+        raise ValueError("Parameter taps contains NaN or infinity!")
+    array.flags.writeable = False
+    return array
+
+
+def _check_kernel(kernel):
+    if kernel not in _KERNELS:
+        raise ValueError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNELS)}!")
+    return kernel
+
+
+def channel_offsets(channels):
+    """Channel centre offsets in cycles per input sample, FFT order (see module doc)."""
+    return np.fft.fftfreq(channels)
+
+
+class AnalysisBank:
+    """Streaming polyphase analysis bank (channelizer); conventions in the module doc.
+
+    ``AnalysisBank(channels=M, decimation=D, taps=h)``; ``process(x)`` takes a
+    1-D chunk of any length and returns the new frames as a ``(frames, M)``
+    complex64 array, channels in FFT order.
+    """
+
+    def __init__(self, channels, decimation, taps, *, kernel="fast"):
+        self._channels, self._decimation = _check_geometry(channels, decimation, "decimation")
+        self._taps = _check_taps(taps)
+        self._kernel_name = _check_kernel(kernel)
+        self._kernel = _KERNELS[kernel]
+        self._work_dtype = _KERNEL_DTYPES[kernel]
+        self._prepared = self._kernel.prepare_fold_taps(self._taps)
+        self.reset()
+
+    channels = property(lambda self: self._channels, doc="Number of channels M.")
+    decimation = property(lambda self: self._decimation, doc="Decimation D (input samples per frame).")
+    taps = property(lambda self: self._taps, doc="Prototype taps h (read-only float64 array).")
+    kernel = property(lambda self: self._kernel_name, doc="'fast' (numba) or 'reference' (numpy).")
+    output_rate_ratio = property(lambda self: 1.0 / self._decimation,
+                                 doc="Channel sample rate divided by input sample rate (1/D).")
+    oversampling = property(lambda self: self._channels // self._decimation, doc="M // D.")
+    channel_offsets = property(lambda self: channel_offsets(self._channels),
+                               doc="Channel centres in cycles per input sample, FFT order.")
+    samples_consumed = property(lambda self: self._consumed, doc="Input samples taken so far.")
+    frames_produced = property(lambda self: self._frames, doc="Frames returned so far.")
+
+    def __repr__(self):
+        return (f"AnalysisBank(channels={self._channels}, decimation={self._decimation}, "
+                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
+
+    def reset(self):
+        """Forget all input: the next sample given is absolute sample 0 again."""
+        self._history = np.zeros(len(self._taps) - 1, dtype=np.complex64)
+        self._consumed = 0
+        self._frames = 0
+
+    def process(self, x):
+        """Take the next chunk of input; return the frames it completes, shape ``(F, M)``."""
+        x = np.asarray(x)
+        if x.ndim != 1:
+            raise ValueError(f"process() takes a 1-D chunk of samples, got shape {x.shape}!")
+        M, D, L = self._channels, self._decimation, len(self._taps)
+        x = np.ascontiguousarray(x, dtype=np.complex64)
+        before = self._consumed                      # absolute index of x[0]
+        self._consumed += len(x)
+        total_frames = -(-self._consumed // D)
+        frame_numbers = np.arange(self._frames, total_frames, dtype=np.int64)
+        self._frames = total_frames
+        out = np.zeros((len(frame_numbers), M), dtype=self._work_dtype)
+        # Absolute index of each frame's first window sample; a frame whose
+        # window starts before x[0] reads from (history + head of x), the rest
+        # read straight from x without copying the chunk.
+        window_start = frame_numbers * D - (L - 1)
+        boundary = int(np.searchsorted(window_start, before))
+        if boundary:
+            joined = np.concatenate([self._history, x[:min(len(x), int(window_start[boundary - 1]) + L - before)]])
+            self._fold(joined, window_start[:boundary] - (before - (L - 1)), window_start[:boundary], out[:boundary])
+        if boundary < len(frame_numbers):
+            self._fold(x, window_start[boundary:] - before, window_start[boundary:], out[boundary:])
+        if L > 1:
+            keep = min(len(x), L - 1)
+            self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
+                else x[len(x) - keep:].copy()
+        if len(out):
+            out = scipy.fft.fft(out, axis=1, overwrite_x=True, workers=1)
+        return out.astype(np.complex64, copy=False)
+
+    def _fold(self, buffer, starts, absolute_starts, out):
+        self._kernel.fold_frames(buffer, self._prepared, self._channels, starts, absolute_starts % self._channels, out)
+
+
+class SynthesisBank:
+    """Streaming polyphase synthesis bank; conventions in the module doc.
+
+    ``SynthesisBank(channels=M, interpolation=D, taps=g)``; ``process(Y)`` takes
+    a ``(frames, M)`` array (channels in FFT order) and returns ``frames * D``
+    complex64 samples.
+    """
+
+    def __init__(self, channels, interpolation, taps, *, kernel="fast"):
+        self._channels, self._interpolation = _check_geometry(channels, interpolation, "interpolation")
+        self._taps = _check_taps(taps)
+        self._kernel_name = _check_kernel(kernel)
+        self._kernel = _KERNELS[kernel]
+        self._work_dtype = _KERNEL_DTYPES[kernel]
+        self._prepared = self._kernel.prepare_spread_taps(self._taps)
+        self.reset()
+
+    channels = property(lambda self: self._channels, doc="Number of channels M.")
+    interpolation = property(lambda self: self._interpolation, doc="Interpolation D (output samples per frame).")
+    taps = property(lambda self: self._taps, doc="Synthesis taps g (read-only float64 array).")
+    kernel = property(lambda self: self._kernel_name, doc="'fast' (numba) or 'reference' (numpy).")
+    frames_consumed = property(lambda self: self._frames, doc="Frames taken so far.")
+
+    def __repr__(self):
+        return (f"SynthesisBank(channels={self._channels}, interpolation={self._interpolation}, "
+                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
+
+    def reset(self):
+        """Forget all frames: the next frame given is frame 0 again."""
+        self._pending = np.zeros(len(self._taps), dtype=self._work_dtype)
+        self._frames = 0
+
+    def process(self, frames):
+        """Take the next frames, shape ``(F, M)``; return the ``F * D`` samples they complete."""
+        frames = np.asarray(frames)
+        M, D, L = self._channels, self._interpolation, len(self._taps)
+        if frames.ndim != 2 or frames.shape[1] != M:
+            raise ValueError(f"process() takes frames of shape (F, {M}), got shape {frames.shape}!")
+        count = len(frames)
+        if count == 0:
+            return np.zeros(0, dtype=np.complex64)
+        periodic = scipy.fft.ifft(frames.astype(self._work_dtype, copy=False), axis=1,
+                                  norm="forward", workers=1)
+        periodic = np.ascontiguousarray(periodic, dtype=self._work_dtype)
+        out = np.zeros(count * D + L, dtype=self._work_dtype)
+        out[:L] = self._pending
+        self._kernel.spread_frames(periodic, self._prepared, D, M, (self._frames * D) % M, out)
+        self._frames += count
+        self._pending = out[count * D:].copy()
+        return out[:count * D].astype(np.complex64, copy=False)

@@ -1,0 +1,5 @@
+import sys
+
+from .cli import entry_point
+
+sys.exit(entry_point())

@@ -1,0 +1,116 @@
+"""``bandloom bench``: bank throughput as a ratio to a bare FFT measured in the same run.
+
+For every (M, R, oversampling) the same random complex64 input is streamed
+through the bank in chunks of ``--chunk`` samples, as the runtime would, and
+the same frames (already cut out and laid out contiguously, so the baseline
+does no polyphase work at all) are transformed chunk by chunk with
+``scipy.fft.fft`` (``ifft`` for synthesis), one worker thread. Each figure is
+the best of ``--repeats`` runs. Ratios, not seconds, are the figures to
+compare between machines.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+
+import numpy as np
+import scipy.fft
+
+from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
+
+from ._memory import reuse_chunk_buffers
+from ._table import render_rows
+
+
+def _int_list(text):
+    return [int(v) for v in text.split(",") if v.strip()]
+
+
+def add_arguments(parser):
+    parser.add_argument("--channels", type=_int_list, default=[64, 1024, 4096], help="comma list of M")
+    parser.add_argument("--taps-per-branch", type=_int_list, default=[4, 8, 16], help="comma list of R")
+    parser.add_argument("--oversample", type=_int_list, default=[1, 2], help="comma list of M/D")
+    parser.add_argument("--samples", type=int, default=1 << 21, help="input samples per case")
+    parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
+    parser.add_argument("--repeats", type=int, default=3, help="best of this many runs")
+    parser.add_argument("--json", action="store_true", help="print the results as JSON")
+
+
+def _best(function, repeats):
+    best = float("inf")
+    for _ in range(repeats):
+        start = time.perf_counter()
+        function()
+        best = min(best, time.perf_counter() - start)
+    return best
+
+
+def measure_case(channels, taps_per_branch, oversample, *, samples, chunk, repeats, seed=0):
+    """Time one case; return a dict of throughputs and ratios."""
+    M, R = channels, taps_per_branch
+    D = M // oversample
+    rng = np.random.default_rng(seed)
+    samples = max(samples // M, 2 * R) * M
+    chunk = max(D, chunk // D * D)
+    x = (rng.standard_normal(samples) + 1j * rng.standard_normal(samples)).astype(np.complex64)
+    taps = rng.standard_normal(R * M)
+    pieces = [x[i:i + chunk] for i in range(0, samples, chunk)]
+
+    analysis = AnalysisBank(M, D, taps)
+    frames = []
+
+    def run_analysis():
+        analysis.reset()
+        frames.clear()
+        frames.extend(analysis.process(p) for p in pieces)
+
+    run_analysis()                                  # warm up (numba cache load, page faults)
+    t_analysis = _best(run_analysis, repeats)
+
+    padded = np.concatenate([x, np.zeros(M, np.complex64)])
+    raw_frames = [np.ascontiguousarray(np.lib.stride_tricks.sliding_window_view(padded, M)[::D][
+        i // D:(i + len(p)) // D + (1 if len(p) % D else 0)]) for i, p in zip(range(0, samples, chunk), pieces)]
+    t_fft = _best(lambda: [scipy.fft.fft(f, axis=1, workers=1) for f in raw_frames], repeats)
+
+    synthesis = SynthesisBank(M, D, taps)
+
+    def run_synthesis():
+        synthesis.reset()
+        for f in frames:
+            synthesis.process(f)
+
+    run_synthesis()
+    t_synthesis = _best(run_synthesis, repeats)
+    t_ifft = _best(lambda: [scipy.fft.ifft(f, axis=1, workers=1) for f in frames], repeats)
+    return {
+        "channels": M, "taps_per_branch": R, "oversample": oversample, "decimation": D,
+        "analysis_msps": samples / t_analysis / 1e6,
+        "analysis_ratio": t_analysis / t_fft,
+        "synthesis_msps": samples / t_synthesis / 1e6,
+        "synthesis_ratio": t_synthesis / t_ifft,
+        "model_ratio": float(cost_ratio(R, M)),
+    }
+
+
+def run(args, out, progress=None):
+    reuse_chunk_buffers()
+    results = []
+    cases = [(m, r, p) for m in args.channels for r in args.taps_per_branch for p in args.oversample]
+    for i, (m, r, p) in enumerate(cases):
+        if m % p:
+            continue
+        if progress:
+            progress(f"bench {i + 1}/{len(cases)}: M={m} R={r} M/D={p}")
+        results.append(measure_case(m, r, p, samples=args.samples, chunk=args.chunk, repeats=args.repeats))
+    if args.json:
+        out.write(json.dumps(results, indent=2) + "\n")
+        return 0
+    headers = ["M", "R", "M/D", "analysis Msamples/s", "analysis / FFT", "synthesis Msamples/s",
+               "synthesis / IFFT", "model 1+R/log2 M"]
+    rows = [[r["channels"], r["taps_per_branch"], r["oversample"], round(r["analysis_msps"], 1),
+             round(r["analysis_ratio"], 2), round(r["synthesis_msps"], 1), round(r["synthesis_ratio"], 2),
+             round(r["model_ratio"], 2)] for r in results]
+    out.write(render_rows(headers, rows) + "\n")
+    out.write("Ratios are bank time over a bare scipy.fft of the same frames, same run, one core.\n")
+    return 0

@@ -1,0 +1,144 @@
+"""AnalysisBank and SynthesisBank against scipy's upfirdn brute force (design.md section 3)."""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, channel_offsets
+from conftest import analysis_oracle, complex_noise, relative_error, synthesis_oracle
+
+# (M, D, L): powers of two and not, every kind of divisor, L shorter than M,
+# not a multiple of M, and long.
+GEOMETRIES = [
+    (2, 1, 1), (2, 2, 5), (3, 1, 10), (3, 3, 2), (4, 2, 4), (8, 4, 30), (8, 8, 64),
+    (12, 1, 7), (12, 2, 25), (12, 3, 100), (12, 4, 37), (12, 6, 12), (12, 12, 61),
+    (16, 8, 129), (16, 16, 100), (64, 32, 500), (100, 50, 333), (100, 25, 1200), (100, 100, 99),
+]
+
+
+@pytest.mark.parametrize("kernel", ["reference", "fast"])
+@pytest.mark.parametrize("channels,decimation,length", GEOMETRIES)
+def test_analysis_equals_upfirdn_oracle(rng, kernel, channels, decimation, length):
+    """Every channel equals mix-down + scipy.signal.upfirdn(h, ., 1, D), phase included."""
+    taps = rng.standard_normal(length)
+    x = complex_noise(rng, 7 * channels + 13)
+    expected = analysis_oracle(taps, x, channels, decimation)
+    bank = AnalysisBank(channels, decimation, taps, kernel=kernel)
+    got = bank.process(x)
+    assert got.dtype == np.complex64
+    assert got.shape == expected.shape == (-(-len(x) // decimation), channels)
+    assert relative_error(got, expected) <= 1e-5
+
+
+@pytest.mark.parametrize("kernel", ["reference", "fast"])
+@pytest.mark.parametrize("channels,decimation,length", GEOMETRIES)
+def test_synthesis_equals_upfirdn_oracle(rng, kernel, channels, decimation, length):
+    """Output equals sum over k of mixup_k(upfirdn(g, Y[:, k], D, 1)) (brute force)."""
+    taps = rng.standard_normal(length)
+    frames = complex_noise(rng, 23 * channels).reshape(23, channels)
+    expected = synthesis_oracle(taps, frames, channels, decimation)
+    got = SynthesisBank(channels, decimation, taps, kernel=kernel).process(frames)
+    assert got.dtype == np.complex64
+    assert got.shape == (23 * decimation,)
+    assert relative_error(got, expected) <= 1e-5
+
+
+@settings(max_examples=40, deadline=None)
+@given(geometry=st.sampled_from(GEOMETRIES), cuts=st.lists(st.integers(0, 400), max_size=8),
+       seed=st.integers(0, 2**32 - 1))
+def test_analysis_is_chunk_invariant(geometry, cuts, seed):
+    """Any chunking of the input (empty chunks included) gives the one-call output."""
+    channels, decimation, length = geometry
+    rng = np.random.default_rng(seed)
+    taps = rng.standard_normal(length)
+    x = complex_noise(rng, 400)
+    whole = AnalysisBank(channels, decimation, taps).process(x)
+    bank = AnalysisBank(channels, decimation, taps)
+    pieces = [bank.process(part) for part in np.split(x, sorted(cuts))]
+    assert sum(len(p) for p in pieces) == len(whole) == -(-400 // decimation)
+    assert relative_error(np.concatenate(pieces), whole) <= 1e-6
+
+
+@settings(max_examples=40, deadline=None)
+@given(geometry=st.sampled_from(GEOMETRIES), cuts=st.lists(st.integers(0, 30), max_size=6),
+       seed=st.integers(0, 2**32 - 1))
+def test_synthesis_is_chunk_invariant(geometry, cuts, seed):
+    """Any chunking of the frames gives the one-call output, F*D samples in all."""
+    channels, decimation, length = geometry
+    rng = np.random.default_rng(seed)
+    taps = rng.standard_normal(length)
+    frames = complex_noise(rng, 30 * channels).reshape(30, channels)
+    whole = SynthesisBank(channels, decimation, taps).process(frames)
+    bank = SynthesisBank(channels, decimation, taps)
+    pieces = [bank.process(part) for part in np.split(frames, sorted(cuts))]
+    assert sum(len(p) for p in pieces) == len(whole) == 30 * decimation
+    assert relative_error(np.concatenate(pieces), whole) <= 1e-6
+
+
+def test_fast_kernel_matches_reference_on_long_prototype(rng):
+    """The numba path equals the numpy reference for a long prototype over many frames."""
+    taps = rng.standard_normal(16 * 256 + 1)
+    x = complex_noise(rng, 256 * 64)
+    fast = AnalysisBank(256, 128, taps).process(x)
+    reference = AnalysisBank(256, 128, taps, kernel="reference").process(x)
+    assert relative_error(fast, reference) <= 1e-5
+    back_fast = SynthesisBank(256, 128, taps).process(fast)
+    back_reference = SynthesisBank(256, 128, taps, kernel="reference").process(fast)
+    assert relative_error(back_fast, back_reference) <= 1e-5
+
+
+def test_frame_count_follows_ceil_rule(rng):
+    """After N input samples, ceil(N / D) frames have been returned."""
+    bank = AnalysisBank(8, 4, rng.standard_normal(20))
+    total = 0
+    for n, size in enumerate([0, 1, 3, 4, 5, 0, 11]):
+        total += size
+        bank.process(complex_noise(rng, size))
+        assert bank.frames_produced == -(-total // 4)
+
+
+def test_tone_lands_in_its_channel():
+    """A tone at +3/M cycles/sample appears in channel 3, one at -2/M in channel M-2 (FFT order)."""
+    M = 16
+    assert channel_offsets(M)[3] == pytest.approx(3 / M)
+    assert channel_offsets(M)[M - 2] == pytest.approx(-2 / M)
+    m = np.arange(M * 200)
+    taps = np.hanning(4 * M)
+    for frequency, channel in [(3 / M, 3), (-2 / M, M - 2)]:
+        frames = AnalysisBank(M, M // 2, taps / taps.sum()).process(np.exp(2j * np.pi * frequency * m))
+        power = np.mean(np.abs(frames[20:]) ** 2, axis=0)
+        assert int(np.argmax(power)) == channel
+        assert power[channel] == pytest.approx(1.0, rel=1e-3)
+
+
+def test_reset_restarts_absolute_time(rng):
+    """reset() makes the next sample absolute sample 0 again."""
+    taps = rng.standard_normal(40)
+    x = complex_noise(rng, 100)
+    bank = AnalysisBank(8, 4, taps)
+    first = bank.process(x)
+    bank.reset()
+    assert np.array_equal(bank.process(x), first)
+
+
+@pytest.mark.parametrize("kwargs,message", [
+    (dict(channels=1, decimation=1, taps=[1.0]), "channels=1 is not an integer >= 2"),
+    (dict(channels=8, decimation=3, taps=[1.0]), "decimation=3 does not divide channels=8"),
+    (dict(channels=8, decimation=0, taps=[1.0]), "decimation=0 is not an integer >= 1"),
+    (dict(channels=8, decimation=4, taps=[]), "non-empty 1-D"),
+    (dict(channels=8, decimation=4, taps=[1j]), "must be real"),
+    (dict(channels=8, decimation=4, taps=[np.nan]), "NaN"),
+    (dict(channels=8, decimation=4, taps=[1.0], kernel="gpu"), "kernel='gpu'"),
+])
+def test_bad_parameters_are_named(kwargs, message):
+    """Bad constructor arguments raise ValueError naming the parameter and the rule."""
+    with pytest.raises(ValueError, match=message.replace("(", r"\(").replace(")", r"\)")):
+        AnalysisBank(**kwargs)
+
+
+def test_bad_chunk_shapes_are_refused(rng):
+    """A 2-D analysis chunk or wrongly shaped synthesis frames raise ValueError."""
+    with pytest.raises(ValueError, match="1-D chunk"):
+        AnalysisBank(8, 4, [1.0]).process(np.zeros((2, 2)))
+    with pytest.raises(ValueError, match=r"shape \(F, 8\)"):
+        SynthesisBank(8, 4, [1.0]).process(np.zeros((2, 7)))
