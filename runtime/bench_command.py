@@ -33,7 +33,7 @@ def add_arguments(parser):
     parser.add_argument("--oversample", type=_int_list, default=[1, 2], help="comma list of M/D")
     parser.add_argument("--samples", type=int, default=1 << 21, help="input samples per case")
     parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
-    parser.add_argument("--repeats", type=int, default=3, help="best of this many runs")
+    parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
 
 

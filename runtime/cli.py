@@ -13,11 +13,21 @@ import os
 import signal
 import sys
 
-from . import bench_command, design_command
+from types import SimpleNamespace
+
+from . import bench_command, design_command, flow_commands
 
 COMMANDS = {
+    "run": (SimpleNamespace(add_arguments=flow_commands.add_run_arguments, run=flow_commands.run_run),
+            "run a flow file: one process per block"),
+    "check": (SimpleNamespace(add_arguments=flow_commands.add_check_arguments, run=flow_commands.run_check),
+              "check a flow file without running it; report every problem"),
+    "blocks": (SimpleNamespace(add_arguments=flow_commands.add_blocks_arguments, run=flow_commands.run_blocks),
+               "list block types, or show one type's parameters and ports"),
     "design": (design_command, "design a matched analysis/synthesis bank and print its figures"),
     "bench": (bench_command, "measure bank throughput against a bare FFT in the same run"),
+    "keys": (SimpleNamespace(add_arguments=flow_commands.add_keys_arguments, run=flow_commands.run_keys),
+             "make CURVE key pairs for a link that crosses machines"),
 }
 
 
@@ -55,6 +65,8 @@ def main(argv=None) -> int:
             status = module.run(args, sys.stdout)
         sys.stdout.flush()
         return status
+    except flow_commands.Interrupted:
+        raise KeyboardInterrupt from None
     except (ValueError, UsageError, OSError) as error:
         if isinstance(error, BrokenPipeError):
             raise

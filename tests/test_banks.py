@@ -142,3 +142,34 @@ def test_bad_chunk_shapes_are_refused(rng):
         AnalysisBank(8, 4, [1.0]).process(np.zeros((2, 2)))
     with pytest.raises(ValueError, match=r"shape \(F, 8\)"):
         SynthesisBank(8, 4, [1.0]).process(np.zeros((2, 7)))
+
+
+@pytest.mark.parametrize("gap", [0, 3, 29, 30, 31, 200, 1001])
+def test_analysis_skip_equals_zero_filled_gap(rng, gap):
+    """skip(n) numbers frames as if n zeros had been fed, and returns exactly the non-zero ones."""
+    taps = rng.standard_normal(30)
+    before, after = complex_noise(rng, 57), complex_noise(rng, 80)
+    reference = AnalysisBank(8, 4, taps).process(np.concatenate([before, np.zeros(gap, np.complex64), after]))
+    bank = AnalysisBank(8, 4, taps)
+    got = [bank.process(before), bank.skip(gap)]
+    first_after = bank.frames_produced
+    tail = bank.process(after)
+    head = np.concatenate(got)
+    assert relative_error(head, reference[:len(head)]) <= 1e-6
+    assert np.all(reference[len(head):first_after] == 0)
+    assert relative_error(tail, reference[first_after:]) <= 1e-6
+
+
+@pytest.mark.parametrize("gap", [0, 2, 9, 40])
+def test_synthesis_skip_equals_zero_frames(rng, gap):
+    """SynthesisBank.skip(n) gives the output of n zero frames where non-zero, and keeps absolute time."""
+    taps = rng.standard_normal(37)
+    a, b = complex_noise(rng, 5 * 8).reshape(5, 8), complex_noise(rng, 6 * 8).reshape(6, 8)
+    reference = SynthesisBank(8, 4, taps).process(np.concatenate([a, np.zeros((gap, 8)), b]))
+    bank = SynthesisBank(8, 4, taps)
+    head = np.concatenate([bank.process(a), bank.skip(gap)])
+    start = bank.frames_consumed * 4
+    tail = bank.process(b)
+    assert relative_error(head, reference[:len(head)]) <= 1e-6
+    assert np.all(np.abs(reference[len(head):start]) == 0)
+    assert relative_error(tail, reference[start:]) <= 1e-6

@@ -1,16 +1,31 @@
 """Pure numeric kernels: polyphase banks, bank design, response figures.
 
 Importable on its own (numpy, scipy, numba only). Conventions are stated once
-in :mod:`bandloom.blocks.dsp.banks`.
+in :mod:`bandloom.blocks.dsp.banks`. Names are imported on first use, so that a
+process that needs only part of the package (a block process, say) does not
+pay for loading scipy.signal and numba.
 """
 
-from .banks import AnalysisBank, SynthesisBank, channel_offsets
-from .design import BankDesign, design_bank
-from .figures import ResponseFigures, cost_ratio, frequency_response, response_figures
-from .frames import dual_window, frame_bounds, round_trip_transfer, tight_window
+from importlib import import_module
 
-__all__ = [
-    "AnalysisBank", "SynthesisBank", "BankDesign", "ResponseFigures",
-    "channel_offsets", "cost_ratio", "design_bank", "dual_window", "frame_bounds",
-    "frequency_response", "response_figures", "round_trip_transfer", "tight_window",
-]
+_WHERE = {
+    "AnalysisBank": "banks", "SynthesisBank": "banks", "channel_offsets": "banks",
+    "BankDesign": "design", "design_bank": "design",
+    "ResponseFigures": "figures", "cost_ratio": "figures", "frequency_response": "figures",
+    "response_figures": "figures",
+    "dual_window": "frames", "frame_bounds": "frames", "round_trip_transfer": "frames", "tight_window": "frames",
+}
+
+__all__ = sorted(_WHERE)
+
+
+def __getattr__(name):
+    if name in _WHERE:
+        value = getattr(import_module(f".{_WHERE[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return __all__

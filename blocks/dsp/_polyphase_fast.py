@@ -25,21 +25,38 @@ def _multiply_add(acc, a, b):
         acc[t] += a[t] * b[t]
 
 
+@njit(cache=True, fastmath=True, nogil=True, inline="never")
+def _multiply_add_4(acc, a1, b1, a2, b2, a3, b3, a4, b4):
+    """acc += a1*b1 + a2*b2 + a3*b3 + a4*b4: one load and store of acc for four rows."""
+    for t in range(acc.shape[0]):
+        acc[t] += (a1[t] * b1[t] + a2[t] * b2[t]) + (a3[t] * b3[t] + a4[t] * b4[t])
+
+
 @njit(cache=True, fastmath=True, nogil=True)
 def _fold_jit(buffer2, reversed_taps2, channels, starts, offsets, out2):
     taps2 = reversed_taps2.shape[0]
     row2 = 2 * channels
     for f in range(starts.shape[0]):
         base = 2 * starts[f]
-        pos = 2 * offsets[f]
         row = out2[f]
-        j = 0
+        row[:] = 0.0          # zeroed here, while the row is in L1, rather than up front
+        # The first run fills the row from the frame's fold offset to its end;
+        # after it every run starts at position 0 and whole rows go four at a time.
+        pos = 2 * offsets[f]
+        j = min(row2 - pos, taps2)
+        _multiply_add(row[pos:pos + j], reversed_taps2[0:j], buffer2[base:base + j])
+        while j + 4 * row2 <= taps2:
+            s = base + j
+            _multiply_add_4(row,
+                            reversed_taps2[j:j + row2], buffer2[s:s + row2],
+                            reversed_taps2[j + row2:j + 2 * row2], buffer2[s + row2:s + 2 * row2],
+                            reversed_taps2[j + 2 * row2:j + 3 * row2], buffer2[s + 2 * row2:s + 3 * row2],
+                            reversed_taps2[j + 3 * row2:j + 4 * row2], buffer2[s + 3 * row2:s + 4 * row2])
+            j += 4 * row2
         while j < taps2:
-            run = min(row2 - pos, taps2 - j)
-            _multiply_add(row[pos:pos + run], reversed_taps2[j:j + run],
-                          buffer2[base + j:base + j + run])
+            run = min(row2, taps2 - j)
+            _multiply_add(row[0:run], reversed_taps2[j:j + run], buffer2[base + j:base + j + run])
             j += run
-            pos = 0
 
 
 @njit(cache=True, fastmath=True, nogil=True)

@@ -28,7 +28,7 @@ def prepare_spread_taps(taps):
 
 
 def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
-    """Weight and fold frames of ``buffer`` into ``out`` (added in place).
+    """Weight and fold frames of ``buffer`` into ``out`` (overwritten).
 
     ``prepared_taps`` comes from ``prepare_fold_taps(taps)``. For frame ``f``
     the window is ``buffer[starts[f] : starts[f] + L]`` (L taps); its sample
@@ -55,7 +55,7 @@ def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
         # folded[:, j] holds absolute index (offsets - (padded - L) + j) mod M.
         shift = (np.asarray(offsets[sel]) - (padded - L)) % M
         gather = (columns[None, :] - shift[:, None]) % M
-        out[sel] += np.take_along_axis(folded, gather, axis=1)
+        out[sel] = np.take_along_axis(folded, gather, axis=1)
 
 
 def spread_frames(frames, prepared_taps, decimation, channels, phase, out):

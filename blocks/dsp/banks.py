@@ -41,10 +41,15 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 
-from . import _polyphase_fast, _polyphase_reference
+from importlib import import_module
 
-_KERNELS = {"fast": _polyphase_fast, "reference": _polyphase_reference}
+_KERNEL_MODULES = {"fast": "._polyphase_fast", "reference": "._polyphase_reference"}
 _KERNEL_DTYPES = {"fast": np.complex64, "reference": np.complex128}
+
+
+def _load_kernel(name):
+    """The kernel module, imported on first use (numba takes a while to load)."""
+    return import_module(_KERNEL_MODULES[name], __package__)
 
 
 def _check_geometry(channels, step, step_name):
@@ -73,8 +78,8 @@ def _check_taps(taps):
 
 
 def _check_kernel(kernel):
-    if kernel not in _KERNELS:
-        raise ValueError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNELS)}!")
+    if kernel not in _KERNEL_MODULES:
+        raise ValueError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNEL_MODULES)}!")
     return kernel
 
 
@@ -95,7 +100,7 @@ class AnalysisBank:
         self._channels, self._decimation = _check_geometry(channels, decimation, "decimation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
-        self._kernel = _KERNELS[kernel]
+        self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
         self._prepared = self._kernel.prepare_fold_taps(self._taps)
         self.reset()
@@ -134,7 +139,7 @@ class AnalysisBank:
         total_frames = -(-self._consumed // D)
         frame_numbers = np.arange(self._frames, total_frames, dtype=np.int64)
         self._frames = total_frames
-        out = np.zeros((len(frame_numbers), M), dtype=self._work_dtype)
+        out = np.empty((len(frame_numbers), M), dtype=self._work_dtype)
         # Absolute index of each frame's first window sample; a frame whose
         # window starts before x[0] reads from (history + head of x), the rest
         # read straight from x without copying the chunk.
@@ -153,6 +158,26 @@ class AnalysisBank:
             out = scipy.fft.fft(out, axis=1, overwrite_x=True, workers=1)
         return out.astype(np.complex64, copy=False)
 
+    def skip(self, count):
+        """Advance absolute time by ``count`` missing input samples, taken as zeros.
+
+        Returns the frames that still see real samples in their window (as
+        ``process`` would); frames whose whole window lies in the gap are all
+        zero and are not returned: ``frames_produced`` jumps past them, so the
+        next frame returned is numbered correctly.
+        """
+        L = len(self._taps)
+        if count < 0:
+            raise ValueError(f"Parameter {count=} is negative!")
+        head = min(count, L - 1 + self._decimation)
+        frames = self.process(np.zeros(head, dtype=np.complex64))
+        rest = count - head
+        if rest:
+            self._history[:] = 0
+            self._consumed += rest
+            self._frames = -(-self._consumed // self._decimation)
+        return frames
+
     def _fold(self, buffer, starts, absolute_starts, out):
         self._kernel.fold_frames(buffer, self._prepared, self._channels, starts, absolute_starts % self._channels, out)
 
@@ -169,7 +194,7 @@ class SynthesisBank:
         self._channels, self._interpolation = _check_geometry(channels, interpolation, "interpolation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
-        self._kernel = _KERNELS[kernel]
+        self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
         self._prepared = self._kernel.prepare_spread_taps(self._taps)
         self.reset()
@@ -207,3 +232,19 @@ class SynthesisBank:
         self._frames += count
         self._pending = out[count * D:].copy()
         return out[:count * D].astype(np.complex64, copy=False)
+
+    def skip(self, count):
+        """Advance by ``count`` missing frames, taken as zeros.
+
+        Returns the output samples that still carry earlier frames' tails;
+        ``frames_consumed * D`` tells the absolute index after the call.
+        """
+        if count < 0:
+            raise ValueError(f"Parameter {count=} is negative!")
+        M, D, L = self._channels, self._interpolation, len(self._taps)
+        head = min(count, -(-L // D))
+        out = self.process(np.zeros((head, M), dtype=np.complex64))
+        self._frames += count - head
+        if count > head:
+            self._pending[:] = 0
+        return out

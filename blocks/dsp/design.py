@@ -40,7 +40,6 @@ from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
-import scipy.signal
 
 from .banks import AnalysisBank, SynthesisBank, _check_geometry
 from .figures import ResponseFigures, response_figures
@@ -77,6 +76,7 @@ def root_raised_cosine(t, rolloff):
 
 
 def _window(window, length, stopband_db):
+    import scipy.signal
     if window == "kaiser":
         return scipy.signal.windows.kaiser(length, scipy.signal.kaiser_beta(stopband_db), sym=True)
     try:
@@ -228,6 +228,8 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
                            else stopband_db, 20, 200)
     if tight:
         raise ValueError("Parameter tight=True needs shape='root-raised-cosine'!")
+    import scipy.signal
+
     length = R * M + 1
     win = ("kaiser", scipy.signal.kaiser_beta(att)) if window == "kaiser" else window
     taps = scipy.signal.firwin(length, 1.0 / M, window=win)

@@ -1,0 +1,37 @@
+"""Design knobs shared by the channelizer and synthesis blocks."""
+
+from __future__ import annotations
+
+from .block import BlockError, Param
+from .dsp.design import SHAPES, design_bank
+
+DESIGN_PARAMS = (
+    Param("shape", "choice", "prototype shape (default: root-raised-cosine when oversampled, "
+          "low-pass when critically sampled)", default=None, choices=SHAPES),
+    Param("taps_per_branch", "int", "prototype length in multiples of the channel count (default 16, "
+          "8 when critically sampled)", default=None, minimum=1, maximum=256),
+    Param("rolloff", "float", "root-raised-cosine rolloff (default 0.5)", default=None,
+          minimum=0.05, maximum=1.0),
+    Param("stopband_db", "quantity", "attenuation the Kaiser window is designed for (default 95 dB, "
+          "90 dB when critically sampled)", default=None, unit="dB", minimum=20, maximum=200),
+    Param("window", "str", "window shaping the prototype, a name scipy.signal.get_window knows",
+          default="kaiser"),
+)
+
+DESIGN_KEYS = tuple(p.name for p in DESIGN_PARAMS)
+
+
+def make_design(channels, oversample, knobs):
+    """design_bank from block parameters; ValueError becomes BlockError naming the parameter."""
+    if channels % oversample:
+        divisors = [d for d in range(1, channels + 1) if channels % d == 0]
+        raise BlockError(f"oversample = {oversample} does not divide channels = {channels} "
+                         f"(choose one of {divisors})", param="oversample")
+    try:
+        return design_bank(channels, oversample=oversample, **{k: knobs.get(k) for k in DESIGN_KEYS})
+    except ValueError as error:
+        message = str(error)
+        for key in DESIGN_KEYS:
+            if f"{key}=" in message:
+                raise BlockError(message, param=key) from None
+        raise BlockError(message) from None

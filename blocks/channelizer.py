@@ -1,0 +1,105 @@
+"""The channelizer block (polyphase analysis bank) and the synthesis block (its inverse)."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from ._bank_params import DESIGN_KEYS, DESIGN_PARAMS, make_design
+from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+
+
+class Channelizer(Block):
+    type_name = "channelizer"
+    summary = "Split a wideband IQ stream into equally spaced channels (polyphase filter bank)."
+    parameters = (
+        Param("channels", "int", "number of channels M; channel k is centred k*rate/M from the "
+              "centre frequency (k >= M/2 counts down from the top: FFT order)", minimum=2),
+        Param("oversample", "int", "channel rate as a multiple of the channel spacing (M / decimation); "
+              "2 or more for exact reconstruction", default=2, minimum=1),
+    ) + DESIGN_PARAMS
+    inputs = (Port("samples", "samples", "wideband IQ"),)
+    outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
+
+    def _design(self):
+        return make_design(self.params["channels"], self.params["oversample"], self.params)
+
+    def output_streams(self, inputs):
+        design = self._design()
+        wide = inputs["samples"]
+        offsets = np.fft.fftfreq(design.channels) * wide.sample_rate
+        knobs = {k: self.params.get(k) for k in DESIGN_KEYS}
+        knobs.update(channels=design.channels, oversample=design.oversampling)
+        return {"channels": StreamInfo(
+            "channels", "cf32", wide.sample_rate / design.decimation, wide.centre_frequency,
+            channels=tuple(range(design.channels)),
+            channel_frequencies=tuple(float(wide.centre_frequency + f) for f in offsets),
+            channel_count=design.channels, channel_spacing=wide.sample_rate / design.channels,
+            design=knobs, start_time=wide.start_time)}
+
+    def start(self, inputs):
+        self.bank = self._design().analysis_bank()
+
+    def consume(self, port, chunk):
+        out = []
+        if chunk.dropped:
+            # Missing input is zeros in absolute time; frames that saw only the
+            # gap are skipped, so the next chunk's first_index jumps past them.
+            first = self.bank.frames_produced
+            edge = self.bank.skip(chunk.dropped)
+            if len(edge):
+                out.append(Chunk(edge, first))
+        first = self.bank.frames_produced
+        out.append(Chunk(self.bank.process(chunk.data), first))
+        return {"channels": out}
+
+
+class Synthesis(Block):
+    type_name = "synthesis"
+    summary = "Merge channels from a channelizer back into one wideband stream (polyphase synthesis)."
+    parameters = (
+        Param("oversample", "int", "must match the channelizer; default: the channelizer's",
+              default=None, minimum=1),
+    ) + tuple(replace(p, doc=p.doc.split(" (default")[0] + " (default: the channelizer's)", default=None)
+              for p in DESIGN_PARAMS)
+    inputs = (Port("channels", "channels", "channels from a channelizer; missing channels count as silence"),)
+    outputs = (Port("samples", "samples", "wideband IQ at the channelizer's input rate, delayed by "
+                    "the design's round-trip delay"),)
+
+    def _design(self, stream):
+        knobs = dict(stream.design)
+        for key in ("oversample",) + DESIGN_KEYS:
+            if self.params.get(key) is not None:
+                knobs[key] = self.params[key]
+        if not stream.channel_count:
+            raise BlockError("the input does not come from a channelizer", port="channels")
+        return make_design(stream.channel_count, knobs.get("oversample") or 2, knobs)
+
+    def output_streams(self, inputs):
+        stream = inputs["channels"]
+        if stream.kind != "channels":
+            raise BlockError("expects a channels stream (several channels side by side); the link "
+                             "selects a single channel — select two or more, or 'all'", port="channels")
+        design = self._design(stream)
+        return {"samples": StreamInfo("samples", "cf32", stream.sample_rate * design.decimation,
+                                      stream.centre_frequency, start_time=stream.start_time)}
+
+    def start(self, inputs):
+        stream = inputs["channels"]
+        self.design = self._design(stream)
+        self.bank = self.design.synthesis_bank()
+        self.columns = np.asarray(stream.channels)
+
+    def consume(self, port, chunk):
+        out = []
+        if chunk.dropped:
+            first = self.bank.frames_consumed * self.design.decimation
+            edge = self.bank.skip(chunk.dropped)
+            if len(edge):
+                out.append(Chunk(edge, first))
+        first = self.bank.frames_consumed * self.design.decimation
+        frames = np.zeros((chunk.count, self.design.channels), dtype=np.complex64)
+        frames[:, self.columns] = chunk.data.reshape(chunk.count, -1)
+        out.append(Chunk(self.bank.process(frames), first))
+        return {"samples": out}

@@ -1,0 +1,182 @@
+"""Raw IQ files: the reader (a source) and the writer (a sink).
+
+Sample formats (the names are the SigMF open standard's ``core:datatype``
+stems): ``cf32`` / ``cf64`` interleaved float I,Q; ``ci16`` / ``ci8``
+interleaved signed integers, scaled by 1/32768 and 1/128 to full scale 1.0;
+``cu8`` unsigned 8-bit as delivered by low-cost receivers, (v - 127.5) / 127.5
+[common practice]. Byte order little-endian unless ``byte_order = "big"``.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+
+import numpy as np
+
+from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+
+FORMATS = {
+    # name: (numpy scalar type of one component, scale, offset)
+    "cf32": (np.float32, 1.0, 0.0),
+    "cf64": (np.float64, 1.0, 0.0),
+    "ci16": (np.int16, 1 / 32768, 0.0),
+    "ci8": (np.int8, 1 / 128, 0.0),
+    "cu8": (np.uint8, 1 / 127.5, -127.5),
+}
+
+
+def component_dtype(sample_format, byte_order):
+    base = np.dtype(FORMATS[sample_format][0])
+    return base.newbyteorder("<" if byte_order == "little" else ">") if base.itemsize > 1 else base
+
+
+def decode_iq(raw, sample_format, byte_order="little"):
+    """Bytes (or an array of components) of ``sample_format`` to complex64, full scale 1.0."""
+    kind, scale, offset = FORMATS[sample_format]
+    components = np.frombuffer(raw, dtype=component_dtype(sample_format, byte_order))
+    values = components.astype(np.float32)
+    if offset:
+        values += np.float32(offset)
+    if scale != 1.0:
+        values *= np.float32(scale)
+    return values.view(np.complex64) if values.dtype == np.float32 else values.astype(np.float32).view(np.complex64)
+
+
+class IQReader(Block):
+    type_name = "iq-reader"
+    summary = "Read raw interleaved IQ samples from a file (cf32, cf64, ci16, ci8, cu8)."
+    is_source = True
+    parameters = (
+        Param("path", "input-path", "the file, relative to the flow file's folder"),
+        Param("format", "choice", "sample format", default="cf32", choices=tuple(FORMATS)),
+        Param("byte_order", "choice", "byte order of multi-byte formats", default="little",
+              choices=("little", "big")),
+        Param("sample_rate", "quantity", "sample rate of the recording", unit="Hz", minimum=1e-9),
+        Param("centre_frequency", "quantity", "RF frequency at 0 Hz of the recording", default=0.0, unit="Hz"),
+        Param("start", "quantity", "skip this much of the recording first", default=0.0, unit="s", minimum=0),
+        Param("duration", "quantity", "read at most this much (0 = to the end)", default=0.0, unit="s", minimum=0),
+        Param("repeat", "int", "play the selection this many times in all (looping)", default=1, minimum=1),
+        Param("chunk_size", "int", "samples per message", default=65536, minimum=1, maximum=1 << 24),
+        Param("pace", "bool", "deliver at the sample rate, as a live receiver would", default=False),
+        Param("trailing_bytes", "choice", "what to do with a partial sample at the end of the file: "
+              "'error' refuses the file, 'drop' ignores the tail with a warning", default="error",
+              choices=("error", "drop")),
+    )
+    outputs = (Port("samples", "samples", "IQ samples, full scale 1.0"),)
+
+    def _geometry(self):
+        path = self.context.input_path(self.params["path"])
+        try:
+            size = path.stat().st_size
+        except OSError as error:
+            raise BlockError(f"cannot read {path}: {error.strerror}", param="path") from None
+        fmt = self.params["format"]
+        sample_bytes = 2 * np.dtype(FORMATS[fmt][0]).itemsize
+        tail = size % sample_bytes
+        if tail and self.params["trailing_bytes"] == "error":
+            raise BlockError(f"{path} holds {size} bytes, not a whole number of {sample_bytes}-byte {fmt} "
+                             f"samples ({tail} bytes left over); check the format, or set "
+                             f"trailing_bytes = \"drop\"", param="path")
+        total = size // sample_bytes
+        rate = self.params["sample_rate"]
+        first = int(round(self.params["start"] * rate))
+        if first > total:
+            raise BlockError(f"start = {self.params['start']:g} s is past the end of {path} "
+                             f"({total / rate:g} s)", param="start")
+        count = total - first
+        if self.params["duration"]:
+            count = min(count, int(round(self.params["duration"] * rate)))
+        return path, sample_bytes, tail, first, count
+
+    def output_streams(self, inputs):
+        self._geometry()
+        return {"samples": StreamInfo("samples", "cf32", self.params["sample_rate"],
+                                      self.params["centre_frequency"])}
+
+    def start(self, inputs):
+        path, self.sample_bytes, tail, self.first, self.count = self._geometry()
+        if tail:
+            print(f"{self.context.name}: warning: dropping the last {tail} bytes of {path} "
+                  f"(a partial sample)", file=sys.stderr)
+        self.file = open(path, "rb")
+        self.file.seek(self.first * self.sample_bytes)
+        self.position = 0            # samples delivered from the selection, this pass
+        self.passes_left = self.params["repeat"]
+        self.index = 0               # absolute index of the next sample sent
+        self.started = time.monotonic()
+
+    def produce(self):
+        if self.stopping:
+            return None
+        if self.position >= self.count:
+            self.passes_left -= 1
+            if self.passes_left <= 0 or self.count == 0:
+                return None
+            self.file.seek(self.first * self.sample_bytes)
+            self.position = 0
+        n = min(self.params["chunk_size"], self.count - self.position)
+        raw = self.file.read(n * self.sample_bytes)
+        n = len(raw) // self.sample_bytes
+        if n == 0:
+            return None
+        data = decode_iq(raw[:n * self.sample_bytes], self.params["format"], self.params["byte_order"])
+        chunk = Chunk(data, self.index)
+        self.position += n
+        self.index += n
+        if self.params["pace"]:
+            due = self.started + self.index / self.params["sample_rate"]
+            delay = due - time.monotonic()
+            if delay > 0:
+                time.sleep(delay)
+        return {"samples": [chunk]}
+
+    def close(self):
+        if getattr(self, "file", None):
+            self.file.close()
+
+
+class IQWriter(Block):
+    type_name = "iq-writer"
+    summary = "Write one stream of IQ samples to a raw file (cf32 or ci16)."
+    parameters = (
+        Param("path", "output-path", "the file, relative to the output folder; may use {channel}, "
+              "{frequency} (Hz) and {frequency_mhz} placeholders"),
+        Param("format", "choice", "sample format written", default="cf32", choices=("cf32", "ci16")),
+    )
+    inputs = (Port("samples", "samples", "IQ samples"),)
+
+    def output_streams(self, inputs):
+        return {}
+
+    def start(self, inputs):
+        self.path = self.context.output_path(self.params["path"])
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.file = open(self.path, "wb")
+        self.written = 0
+        self.zero_filled = 0
+
+    def _write(self, data):
+        if self.params["format"] == "ci16":
+            pairs = np.clip(np.round(data.view(np.float32) * 32768), -32768, 32767).astype("<i2")
+            pairs.tofile(self.file)
+        else:
+            np.asarray(data, dtype="<c8").tofile(self.file)
+
+    def consume(self, port, chunk):
+        if chunk.dropped:
+            # A raw file has no way to mark a gap: keep absolute time with zeros.
+            self._write(np.zeros(chunk.dropped, dtype=np.complex64))
+            self.zero_filled += chunk.dropped
+        self._write(chunk.data)
+        self.written += chunk.count
+        return {}
+
+    def close(self):
+        if getattr(self, "file", None):
+            self.file.flush()
+            self.file.close()
+
+    def report(self):
+        gaps = f", {self.zero_filled} zero-filled for gaps" if getattr(self, "zero_filled", 0) else ""
+        return [f"wrote {getattr(self, 'written', 0)} samples to {getattr(self, 'path', '?')}{gaps}"]

@@ -1,0 +1,144 @@
+"""``bandloom check``, ``bandloom run``, ``bandloom blocks`` and ``bandloom keys``."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import sys
+from pathlib import Path
+
+from bandloom.blocks.block import REQUIRED
+from bandloom.blocks.units import format_frequency
+
+from ._table import render_rows
+from .flowfile import FlowErrors, load_flow
+from .plugins import load_registry
+from .supervisor import Supervisor
+
+
+class Interrupted(Exception):
+    """The run was stopped with Ctrl-C after a clean shutdown."""
+
+
+def _registry(log):
+    registry = load_registry()
+    for line in registry.failures:
+        print(f"bandloom: warning: {line}", file=log)
+    return registry
+
+
+def _load(args, log):
+    registry = _registry(log)
+    try:
+        return load_flow(args.flow, registry, output_dir=getattr(args, "out", None))
+    except FlowErrors as errors:
+        for problem in errors.problems:
+            print(str(problem), file=log)
+        count = len(errors.problems)
+        print(f"bandloom: {count} problem{'s' if count != 1 else ''} in {args.flow}", file=log)
+        return None
+
+
+def add_check_arguments(parser):
+    parser.add_argument("flow", help="the flow file (TOML)")
+    parser.add_argument("--out", help="output folder the run would use (default: current folder)")
+
+
+def run_check(args, out, log=sys.stderr):
+    flow = _load(args, log)
+    if flow is None:
+        return 1
+    out.write(f"{args.flow}: ok: {len(flow.instances)} block processes, {len(flow.links)} links\n")
+    for inst in flow.instances.values():
+        for port, stream in inst.output_streams.items():
+            if stream.kind == "channels":
+                desc = (f"{len(stream.channels)} channels at {format_frequency(stream.sample_rate)} each, "
+                        f"spaced {format_frequency(stream.channel_spacing)}")
+            else:
+                desc = f"{stream.sample_type} at {format_frequency(stream.sample_rate)}, centre " \
+                       f"{format_frequency(stream.centre_frequency)}"
+            out.write(f"  {inst.name}.{port}: {desc}\n")
+    return 0
+
+
+def add_run_arguments(parser):
+    parser.add_argument("flow", help="the flow file (TOML)")
+    parser.add_argument("--out", help="folder for output files (default: current folder)")
+    parser.add_argument("--quiet", action="store_true", help="no status display and no notes on stderr")
+    parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
+
+
+def run_run(args, out, log=sys.stderr):
+    flow = _load(args, log)
+    if flow is None:
+        return 1
+    output_dir = Path(args.out) if args.out else Path.cwd()
+    supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log)
+    outcome = supervisor.run()
+    summary = supervisor.summary()
+    supervisor.print_summary(summary)
+    if args.report:
+        Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
+    if outcome == "interrupted":
+        raise Interrupted()
+    return 0 if outcome == "finished" else 1
+
+
+def add_blocks_arguments(parser):
+    parser.add_argument("type", nargs="?", help="show one block type's parameters and ports")
+
+
+def _default(param):
+    if param.default is REQUIRED:
+        return "required"
+    if param.default is None:
+        return "(see text)"
+    if isinstance(param.default, bool):
+        return "true" if param.default else "false"
+    return repr(param.default) if isinstance(param.default, str) else f"{param.default:g}" \
+        if isinstance(param.default, float) else str(param.default)
+
+
+def run_blocks(args, out, log=sys.stderr):
+    registry = _registry(log)
+    if not args.type:
+        rows = [[name, registry.origins[name], registry.types[name].summary] for name in registry.names()]
+        out.write(render_rows(["type", "from", "what it does"], rows) + "\n")
+        return 0
+    cls = registry.types.get(args.type)
+    if cls is None:
+        import difflib
+        hint = difflib.get_close_matches(args.type, registry.names(), n=1)
+        raise ValueError(f"no block type {args.type!r}" + (f"; did you mean {hint[0]!r}?" if hint else "")
+                         + f" (known: {', '.join(registry.names())})")
+    out.write(f"{cls.type_name}: {cls.summary}\n\nparameters:\n")
+    rows = [[p.name, p.describe_type(), p.unit or "", _default(p), p.doc] for p in cls.parameters]
+    out.write((render_rows(["name", "type", "unit", "default", "meaning"], rows) if rows else "  (none)") + "\n")
+    for title, ports in (("inputs", cls.inputs), ("outputs", cls.outputs)):
+        out.write(f"\n{title}:\n")
+        if not ports:
+            out.write("  (none)\n")
+        for port in ports:
+            out.write(f"  {port.name} ({port.kind}, {'/'.join(port.sample_types)}): {port.doc}\n")
+    return 0
+
+
+def add_keys_arguments(parser):
+    parser.add_argument("folder", help="folder to create the key pairs in")
+
+
+def run_keys(args, out, log=sys.stderr):
+    import zmq.auth
+
+    folder = Path(args.folder)
+    if folder.exists() and any(folder.iterdir()):
+        raise ValueError(f"{folder} is not empty; choose a new folder so no key is overwritten")
+    (folder / "authorized").mkdir(parents=True, exist_ok=True)
+    zmq.auth.create_certificates(str(folder), "server")
+    client_public, _ = zmq.auth.create_certificates(str(folder), "client")
+    shutil.copy(client_public, folder / "authorized" / "client.key")
+    out.write(f"{folder}/server.key_secret   the link's own key pair (keep secret; name the folder in keys = ...)\n"
+              f"{folder}/server.key          public key the outside program needs\n"
+              f"{folder}/client.key_secret   the outside program's key pair (copy it to that machine)\n"
+              f"{folder}/authorized/         public keys allowed to connect\n")
+    return 0

@@ -1,0 +1,193 @@
+"""ZeroMQ links between block processes: one PUSH/PULL pair per link.
+
+* Lossless by default: the sender blocks while the link's queue is full
+  (``queue`` messages at each end, set as ZeroMQ high-water marks), so a slow
+  consumer slows its producer and memory stays bounded.
+* ``when_full = "drop"``: a message that does not fit is dropped whole; its
+  rows are counted and the next message that goes through carries the
+  discontinuity flag and the number of rows missing before it.
+* Messages are sent without copying (``copy=False``): the arrays handed to
+  :meth:`Outlet.send` are never modified afterwards.
+* Received messages are decoded with :mod:`.wire` (size limits, whitelists);
+  an incoming message is capped with ``MAXMSGSIZE``.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+import zmq
+import zmq.auth
+
+from bandloom.blocks.block import Chunk
+
+from . import wire
+
+MAX_MESSAGE_BYTES = 1 << 30
+POLL_MS = 200
+
+
+class Aborted(Exception):
+    """The run is being aborted; the worker stops at once."""
+
+
+def configure(sock, queue):
+    sock.setsockopt(zmq.LINGER, 2000)
+    sock.setsockopt(zmq.SNDHWM, queue)
+    sock.setsockopt(zmq.RCVHWM, queue)
+    sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
+
+
+def secure_server(sock, keys_dir, context):
+    """Make ``sock`` a CURVE server with the keys made by 'bandloom keys'; return the authenticator."""
+    from zmq.auth.thread import ThreadAuthenticator
+
+    keys_dir = Path(keys_dir)
+    authenticator = ThreadAuthenticator(context)
+    authenticator.start()
+    authenticator.configure_curve(domain="*", location=str(keys_dir / "authorized"))
+    public, secret = zmq.auth.load_certificate(str(keys_dir / "server.key_secret"))
+    sock.curve_secretkey = secret
+    sock.curve_publickey = public
+    sock.curve_server = True
+    return authenticator
+
+
+class Outlet:
+    """The sending end of one link."""
+
+    def __init__(self, context, spec, should_abort):
+        self.spec = spec
+        self.id = spec["link"]
+        self.columns = spec.get("columns")
+        self.stream = spec["stream"]
+        self.when_full = spec.get("when_full", "wait")
+        self.should_abort = should_abort
+        self.sock = context.socket(zmq.PUSH)
+        configure(self.sock, spec.get("queue", 8))
+        self.authenticator = None
+        if spec.get("bind"):
+            if spec.get("keys"):
+                self.authenticator = secure_server(self.sock, spec["keys"], context)
+            self.sock.bind(spec["endpoint"])
+        else:
+            self.sock.connect(spec["endpoint"])
+        self.next_index = 0
+        self.seq = 0
+        self.rows = 0
+        self.messages = 0
+        self.dropped_rows = 0
+        self.dropped_messages = 0
+        self.discontinuities = 0
+        self.blocked_seconds = 0.0
+        s = self.stream
+        self._fixed = dict(stream=spec["label"], sample_type=s.sample_type, sample_rate=s.sample_rate,
+                           centre_frequency=s.centre_frequency, width=s.width)
+        if s.channels:
+            self._fixed.update(channels=list(s.channels), channel_frequencies=list(s.channel_frequencies))
+
+    def _send(self, frames, *, droppable):
+        if droppable:
+            try:
+                self.sock.send_multipart(frames, copy=False, flags=zmq.NOBLOCK)
+                return True
+            except zmq.Again:
+                return False
+        while not self.sock.poll(POLL_MS, zmq.POLLOUT):
+            self.blocked_seconds += POLL_MS / 1000
+            if self.should_abort():
+                raise Aborted()
+        started = time.monotonic()
+        self.sock.send_multipart(frames, copy=False)
+        self.blocked_seconds += time.monotonic() - started
+        return True
+
+    def send(self, chunk):
+        data = chunk.data
+        if self.columns is not None:
+            data = data[:, self.columns[0]] if len(self.columns) == 1 else data[:, self.columns]
+        data = np.ascontiguousarray(data, dtype=self.stream.dtype)
+        count = len(data)
+        if count == 0:
+            return
+        gap = chunk.first_index - self.next_index
+        if gap < 0:
+            raise RuntimeError(f"link {self.spec['label']}: chunk starts at {chunk.first_index}, before "
+                               f"the {self.next_index} rows already sent")
+        flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity) else 0
+        header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
+                                    dropped=gap, **self._fixed)
+        if not self._send([header, data], droppable=self.when_full == "drop"):
+            self.dropped_rows += count
+            self.dropped_messages += 1
+            return
+        self.seq += 1
+        self.messages += 1
+        self.rows += count
+        self.discontinuities += bool(flags)
+        self.next_index = chunk.first_index + count
+
+    def end(self):
+        header = wire.encode_header(seq=self.seq, first_index=self.next_index, count=0, flags=wire.FLAG_END,
+                                    **self._fixed)
+        self._send([header, b""], droppable=False)
+
+    def stats(self):
+        return {"rows": self.rows, "messages": self.messages, "seq": self.seq,
+                "dropped_rows": self.dropped_rows, "dropped_messages": self.dropped_messages,
+                "discontinuities": self.discontinuities, "blocked_seconds": round(self.blocked_seconds, 3)}
+
+    def close(self):
+        self.sock.close(linger=2000)
+        if self.authenticator:
+            self.authenticator.stop()
+
+
+class Inlet:
+    """The receiving end of one link; binds its private endpoint."""
+
+    def __init__(self, context, spec, port):
+        self.spec = spec
+        self.id = spec["link"]
+        self.port = port
+        self.stream = spec["stream"]
+        self.sock = context.socket(zmq.PULL)
+        configure(self.sock, spec.get("queue", 8))
+        self.sock.bind(spec["endpoint"])
+        self.rows = 0
+        self.messages = 0
+        self.gaps = 0
+        self.missing = 0
+        self.last_seq = -1
+        self.ended = False
+
+    def receive(self):
+        """Take one message; return a Chunk, or None at end of stream. Raises wire.WireError."""
+        frames = self.sock.recv_multipart(copy=False)
+        if len(frames) != 2:
+            raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
+        header = wire.decode_header(frames[0].buffer)
+        if header["flags"] & wire.FLAG_END:
+            self.ended = True
+            return None
+        if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
+            raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
+                                 f"was set up for {self.stream.sample_type} x {self.stream.width}")
+        data = wire.decode_payload(header, frames[1].buffer)
+        self.rows += header["count"]
+        self.messages += 1
+        self.last_seq = header["seq"]
+        if header["dropped"]:
+            self.gaps += 1
+            self.missing += header["dropped"]
+        return Chunk(data, header["first_index"], discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY),
+                     dropped=header["dropped"])
+
+    def stats(self):
+        return {"rows": self.rows, "messages": self.messages, "seq": self.last_seq, "gaps": self.gaps,
+                "missing": self.missing}
+
+    def close(self):
+        self.sock.close(linger=0)

@@ -1,0 +1,89 @@
+"""Block types from installed packages, found through the ``bandloom.blocks`` entry-point group.
+
+bandloom's own blocks are registered the same way (see pyproject.toml), so
+there is one mechanism. Names listed in the environment variable
+``BANDLOOM_BLOCKED_PLUGINS`` (comma-separated entry-point names) are not
+loaded at all. A plugin that fails to import, or whose class breaks the block
+contract, is reported by name and distribution and left out; the others load.
+The contract is checked when the plugin registers, not when it is first used.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from importlib.metadata import entry_points
+
+from bandloom.blocks.block import Block, Param, Port
+
+ENTRY_POINT_GROUP = "bandloom.blocks"
+PARAM_KINDS = {"int", "float", "str", "bool", "choice", "quantity", "input-path", "output-path", "list",
+               "channels"}
+PORT_KINDS = {"samples", "channels", "any"}
+
+
+class PluginError(Exception):
+    """A plugin broke the block contract; the message names what."""
+
+
+@dataclass
+class Registry:
+    types: dict = field(default_factory=dict)          # type name -> class
+    origins: dict = field(default_factory=dict)        # type name -> distribution name
+    failures: list = field(default_factory=list)       # one line per plugin that did not load
+
+    def names(self):
+        return sorted(self.types)
+
+
+def validate_block_class(name, cls):
+    """Raise PluginError unless ``cls`` is a proper block type registered as ``name``."""
+    if not (isinstance(cls, type) and issubclass(cls, Block)):
+        raise PluginError(f"{cls!r} is not a subclass of bandloom.blocks.block.Block")
+    if cls.type_name != name:
+        raise PluginError(f"its type_name is {cls.type_name!r} but it is registered as {name!r}")
+    if not cls.summary:
+        raise PluginError("it has no one-line summary")
+    seen = set()
+    for p in cls.parameters:
+        if not isinstance(p, Param):
+            raise PluginError(f"parameter {p!r} is not a Param")
+        if p.kind not in PARAM_KINDS:
+            raise PluginError(f"parameter {p.name!r} has unknown kind {p.kind!r}")
+        if p.name in seen or p.name in ("type", "per_channel"):
+            raise PluginError(f"parameter name {p.name!r} is repeated or reserved")
+        seen.add(p.name)
+    for direction, ports in (("input", cls.inputs), ("output", cls.outputs)):
+        names = set()
+        for port in ports:
+            if not isinstance(port, Port) or port.kind not in PORT_KINDS:
+                raise PluginError(f"{direction} port {port!r} is not a Port of kind {sorted(PORT_KINDS)}")
+            if port.name in names:
+                raise PluginError(f"{direction} port {port.name!r} is repeated")
+            names.add(port.name)
+    if cls.is_source and cls.inputs:
+        raise PluginError("a source block cannot have inputs")
+
+
+def load_registry(only=None):
+    """Load every block type (or just the one named ``only``); never raises for a bad plugin."""
+    blocked = {n.strip() for n in os.environ.get("BANDLOOM_BLOCKED_PLUGINS", "").split(",") if n.strip()}
+    registry = Registry()
+    for ep in sorted(entry_points(group=ENTRY_POINT_GROUP), key=lambda e: e.name):
+        if ep.name in blocked or (only is not None and ep.name != only):
+            continue
+        dist = ep.dist.name if ep.dist is not None else "unknown distribution"
+        try:
+            cls = ep.load()
+            validate_block_class(ep.name, cls)
+        except Exception as error:  # a plugin may fail in any way; report it and go on
+            registry.failures.append(f"plugin {ep.name!r} from {dist} failed to load: "
+                                     f"{type(error).__name__}: {error}")
+            continue
+        if ep.name in registry.types:
+            registry.failures.append(f"plugin {ep.name!r} from {dist} is ignored: {registry.origins[ep.name]} "
+                                     f"already provides a block type of that name")
+            continue
+        registry.types[ep.name] = cls
+        registry.origins[ep.name] = dist
+    return registry

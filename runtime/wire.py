@@ -1,0 +1,107 @@
+"""The wire format of bandloom links (specified for outsiders in docs/wire.md).
+
+A message is two ZeroMQ frames: a msgpack map (the header) and the raw
+sample buffer, little-endian, rows one after another. Decoding treats every
+byte as untrusted: the header's size is checked before unpacking, msgpack
+runs with limits and no extension types, every field is checked, the sample
+type comes from a whitelist, and ``count * width * item size`` must equal the
+payload's length. Nothing is ever unpickled or evaluated.
+"""
+
+from __future__ import annotations
+
+import math
+
+import msgpack
+import numpy as np
+
+VERSION = 1
+HEADER_LIMIT = 64 * 1024
+FLAG_END = 1
+FLAG_DISCONTINUITY = 2
+SAMPLE_TYPES = {"cf32": np.dtype("<c8"), "f32": np.dtype("<f4")}
+MAX_ROWS = 1 << 28
+
+_REQUIRED = {
+    "version": int, "stream": str, "seq": int, "first_index": int, "count": int, "width": int,
+    "sample_type": str, "sample_rate": float, "centre_frequency": float, "flags": int,
+}
+_OPTIONAL = {"dropped": int, "channels": list, "channel_frequencies": list}
+
+
+class WireError(ValueError):
+    """A message that does not follow docs/wire.md; the text says which field and why."""
+
+
+def encode_header(*, stream, seq, first_index, count, width, sample_type, sample_rate,
+                  centre_frequency, flags=0, dropped=0, channels=None, channel_frequencies=None):
+    header = {
+        "version": VERSION, "stream": stream, "seq": int(seq), "first_index": int(first_index),
+        "count": int(count), "width": int(width), "sample_type": sample_type,
+        "sample_rate": float(sample_rate), "centre_frequency": float(centre_frequency),
+        "flags": int(flags), "dropped": int(dropped),
+    }
+    if channels is not None:
+        header["channels"] = [int(c) for c in channels]
+        header["channel_frequencies"] = [float(f) for f in channel_frequencies]
+    return msgpack.packb(header, use_bin_type=True)
+
+
+def _no_extensions(code, data):
+    raise WireError(f"header uses msgpack extension type {code}, which the format does not allow")
+
+
+def decode_header(raw):
+    """Check and unpack a header frame; return the dict or raise WireError."""
+    if len(raw) > HEADER_LIMIT:
+        raise WireError(f"header is {len(raw)} bytes, more than the {HEADER_LIMIT}-byte limit")
+    try:
+        header = msgpack.unpackb(bytes(raw), raw=False, strict_map_key=True, ext_hook=_no_extensions,
+                                 max_str_len=HEADER_LIMIT, max_bin_len=0, max_array_len=1 << 16,
+                                 max_map_len=64)
+    except WireError:
+        raise
+    except Exception as error:  # msgpack raises several unrelated types for bad bytes
+        raise WireError(f"header is not valid msgpack: {error}") from None
+    if not isinstance(header, dict):
+        raise WireError(f"header is a msgpack {type(header).__name__}, not a map")
+    for key, kind in _REQUIRED.items():
+        if key not in header:
+            raise WireError(f"header lacks the field {key!r}")
+        value = header[key]
+        if kind is float and isinstance(value, int) and not isinstance(value, bool):
+            value = header[key] = float(value)
+        if isinstance(value, bool) or not isinstance(value, kind):
+            raise WireError(f"header field {key!r} is {value!r}, not a {kind.__name__}")
+    for key, kind in _OPTIONAL.items():
+        if key in header and (isinstance(header[key], bool) or not isinstance(header[key], kind)):
+            raise WireError(f"header field {key!r} is {header[key]!r}, not a {kind.__name__}")
+    if header["version"] != VERSION:
+        raise WireError(f"header version {header['version']} is not the supported version {VERSION}")
+    if header["sample_type"] not in SAMPLE_TYPES:
+        raise WireError(f"sample_type {header['sample_type']!r} is not one of {sorted(SAMPLE_TYPES)}")
+    if not 0 <= header["count"] <= MAX_ROWS:
+        raise WireError(f"count {header['count']} is outside 0 .. {MAX_ROWS}")
+    if not 1 <= header["width"] <= 1 << 16:
+        raise WireError(f"width {header['width']} is outside 1 .. 65536")
+    if header["first_index"] < 0 or header["seq"] < 0 or header.get("dropped", 0) < 0:
+        raise WireError("first_index, seq and dropped must not be negative")
+    if not (math.isfinite(header["sample_rate"]) and header["sample_rate"] > 0):
+        raise WireError(f"sample_rate {header['sample_rate']!r} is not a positive number")
+    if "channels" in header and len(header["channels"]) != header["width"]:
+        raise WireError(f"channels lists {len(header['channels'])} entries for width {header['width']}")
+    header.setdefault("dropped", 0)
+    return header
+
+
+def decode_payload(header, payload):
+    """The payload as a numpy array viewing the frame's buffer (1-D if width 1, else 2-D)."""
+    dtype = SAMPLE_TYPES[header["sample_type"]]
+    expected = header["count"] * header["width"] * dtype.itemsize
+    if len(payload) != expected:
+        raise WireError(f"payload is {len(payload)} bytes; count {header['count']} x width "
+                        f"{header['width']} x {dtype.itemsize} bytes says {expected}")
+    array = np.frombuffer(payload, dtype=dtype)
+    if header["width"] > 1:
+        array = array.reshape(header["count"], header["width"])
+    return array
