@@ -34,7 +34,10 @@ class Aborted(Exception):
 
 
 def configure(sock, queue):
-    sock.setsockopt(zmq.LINGER, 2000)
+    # Unlimited linger: messages queued when a sender closes are still
+    # delivered (a consumer may still be starting). An aborted run ends
+    # stuck senders by killing them.
+    sock.setsockopt(zmq.LINGER, -1)
     sock.setsockopt(zmq.SNDHWM, queue)
     sock.setsockopt(zmq.RCVHWM, queue)
     sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
@@ -139,8 +142,9 @@ class Outlet:
                 "dropped_rows": self.dropped_rows, "dropped_messages": self.dropped_messages,
                 "discontinuities": self.discontinuities, "blocked_seconds": round(self.blocked_seconds, 3)}
 
-    def close(self):
-        self.sock.close(linger=2000)
+    def close(self, *, discard=False):
+        """Close; queued messages are still delivered unless ``discard`` (abort, error)."""
+        self.sock.close(linger=0 if discard else None)
         if self.authenticator:
             self.authenticator.stop()
 

@@ -68,9 +68,12 @@ class Worker:
         self.rows_in = 0
         self.rows_out = 0
         self.started = time.monotonic()
+        self.parent = os.getppid()
 
     # -- control and statistics -------------------------------------------------------------
     def poll_control(self):
+        if os.getppid() != self.parent:
+            self.abort = True          # the supervisor is gone: nobody will ever stop us
         while True:
             try:
                 message = self.control.recv(zmq.NOBLOCK)
@@ -189,7 +192,7 @@ class Worker:
             inlet.close()
         for outs in self.outlets.values():
             for outlet in outs:
-                outlet.close()
+                outlet.close(discard=event != "done")
         self.control.close()
         self.stats_socket.close(linger=5000)
         self.context.term()

@@ -1,0 +1,19 @@
+"""Run the bandloom command line in a real subprocess, as a user would."""
+
+import json
+import subprocess
+import sys
+
+
+def bandloom(*args, cwd=None, timeout=240, stdin=None, env=None):
+    """Run ``python -m bandloom.runtime ARGS``; return the CompletedProcess (text mode)."""
+    return subprocess.run([sys.executable, "-m", "bandloom.runtime", *map(str, args)], cwd=cwd,
+                          capture_output=True, text=True, timeout=timeout, input=stdin, env=env)
+
+
+def run_flow(flow_path, out_dir, *extra, timeout=240):
+    """Run a flow with a JSON report; return (completed process, report dict or None)."""
+    report = out_dir / "report.json"
+    done = bandloom("run", flow_path, "--out", out_dir, "--report", report, "--quiet", *extra, timeout=timeout)
+    data = json.loads(report.read_text()) if report.exists() else None
+    return done, data

@@ -1,0 +1,249 @@
+"""Flows run for real: one OS process per block, ZeroMQ links, files compared with the in-process banks."""
+
+import os
+import socket
+import subprocess
+import sys
+import textwrap
+import time
+
+import msgpack
+import numpy as np
+import pytest
+import zmq
+
+from bandloom.blocks.dsp import design_bank
+from conftest import complex_noise
+from runner import bandloom, run_flow
+
+RATE = 1.6e6
+CENTRE = 156.0e6
+M = 16
+
+
+@pytest.fixture
+def recording(tmp_path, rng):
+    """A cf32 recording written with plain numpy: noise plus tones in channels 2 and 13."""
+    n = 120_000
+    m = np.arange(n)
+    x = 0.05 * complex_noise(rng, n)
+    x += 0.5 * np.exp(2j * np.pi * (2 / M + 0.01) * m) + 0.2 * np.exp(2j * np.pi * (-3 / M) * m)
+    x = x.astype(np.complex64)
+    x.tofile(tmp_path / "band.cf32")
+    return x
+
+
+def reference_channels(x, oversample=2):
+    design = design_bank(M, oversample=oversample)
+    return design.analysis_bank().process(x), design
+
+
+def write_flow(tmp_path, body):
+    path = tmp_path / "flow.toml"
+    path.write_text(textwrap.dedent(body))
+    return path
+
+
+SOURCE = f"""
+[blocks.source]
+type = "iq-reader"
+path = "band.cf32"
+sample_rate = "1.6 MHz"
+centre_frequency = "156 MHz"
+chunk_size = 7000
+"""
+
+
+def test_eight_channels_to_eight_writer_processes(tmp_path, recording):
+    """16 channels at 2x oversampling, 8 selected, each to its own writer process; files equal AnalysisBank."""
+    flow = write_flow(tmp_path, SOURCE + """
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [blocks.keep]
+        type = "iq-writer"
+        path = "ch{channel:02d}.cf32"
+        per_channel = { from = "split.channels", select = [0, 1, 2, 3, "12..15"] }
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+    """)
+    done, report = run_flow(flow, tmp_path / "out")
+    assert done.returncode == 0, done.stderr
+    assert "Traceback" not in done.stderr
+    expected, _ = reference_channels(recording)
+    for k in [0, 1, 2, 3, 12, 13, 14, 15]:
+        got = np.fromfile(tmp_path / "out" / f"ch{k:02d}.cf32", dtype=np.complex64)
+        assert got.shape == (len(expected),)
+        assert np.max(np.abs(got - expected[:, k])) <= 1e-6 * np.max(np.abs(expected))
+    writers = {name: b["pid"] for name, b in report["blocks"].items() if name.startswith("keep[")}
+    assert len(writers) == 8 and len(set(writers.values())) == 8
+    all_pids = {b["pid"] for b in report["blocks"].values()}
+    assert len(all_pids) == len(report["blocks"]) == 10 and os.getpid() not in all_pids
+    assert all(b["state"] == "done" for b in report["blocks"].values())
+    assert all(x["dropped_samples"] == 0 and x["sent_samples"] == x["received_samples"] for x in report["links"])
+
+
+def test_channels_selected_by_frequency(tmp_path, recording):
+    """Selecting "156.2 MHz" and "155.7 MHz" picks channels 2 and 13 (centre + k*100 kHz, FFT order)."""
+    flow = write_flow(tmp_path, SOURCE + """
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [blocks.keep]
+        type = "iq-writer"
+        path = "{frequency}.cf32"
+        per_channel = { from = "split.channels", select = ["156.2 MHz", "155.700 MHz"] }
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+    """)
+    done, report = run_flow(flow, tmp_path / "out")
+    assert done.returncode == 0, done.stderr
+    expected, _ = reference_channels(recording)
+    for hz, k in [(156_200_000, 2), (155_700_000, 13)]:
+        got = np.fromfile(tmp_path / "out" / f"{hz}.cf32", dtype=np.complex64)
+        assert np.max(np.abs(got - expected[:, k])) <= 1e-6 * np.max(np.abs(expected))
+    assert sorted(report["blocks"]) == ["keep[13]", "keep[2]", "source", "split"]
+
+
+def test_round_trip_through_separate_processes(tmp_path, recording):
+    """channelizer -> synthesis in separate processes returns the input, delayed by the design's delay."""
+    flow = write_flow(tmp_path, SOURCE + """
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [blocks.merge]
+        type = "synthesis"
+
+        [blocks.keep]
+        type = "iq-writer"
+        path = "back.cf32"
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+
+        [[links]]
+        from = "split.channels"
+        to = "merge.channels"
+
+        [[links]]
+        from = "merge.samples"
+        to = "keep.samples"
+    """)
+    done, report = run_flow(flow, tmp_path / "out")
+    assert done.returncode == 0, done.stderr
+    design = design_bank(M)
+    back = np.fromfile(tmp_path / "out" / "back.cf32", dtype=np.complex64)
+    d = design.delay
+    assert len(back) == len(recording)
+    settled = slice(2 * d, len(back))
+    error = back[settled] - recording[settled.start - d:len(back) - d]
+    error_db = 10 * np.log10(np.mean(np.abs(error) ** 2) / np.mean(np.abs(recording) ** 2))
+    assert error_db <= design.round_trip_error_db + 12 and error_db <= -110
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording):
+    """A consumer written from docs/wire.md with only pyzmq, msgpack and numpy gets AnalysisBank's channel 2."""
+    port = _free_port()
+    flow = write_flow(tmp_path, SOURCE + f"""
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+
+        [[links]]
+        from = "split.channels"
+        select = 2
+        endpoint = "tcp://127.0.0.1:{port}"
+    """)
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
+                               "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
+    ctx = zmq.Context()
+    sock = ctx.socket(zmq.PULL)
+    sock.setsockopt(zmq.MAXMSGSIZE, 1 << 30)
+    sock.setsockopt(zmq.RCVTIMEO, 60_000)
+    sock.connect(f"tcp://127.0.0.1:{port}")
+    parts, headers = [], []
+    try:
+        while True:
+            header_bytes, payload = sock.recv_multipart()
+            assert len(header_bytes) <= 65536
+            header = msgpack.unpackb(header_bytes, raw=False, strict_map_key=True)
+            headers.append(header)
+            if header["flags"] & 1:
+                break
+            rows = np.frombuffer(payload, dtype={"cf32": "<c8", "f32": "<f4"}[header["sample_type"]])
+            assert rows.size == header["count"] * header["width"]
+            parts.append(rows)
+    finally:
+        sock.close(linger=0)
+        ctx.term()
+    _, stderr = runner.communicate(timeout=120)
+    assert runner.returncode == 0, stderr
+    got = np.concatenate(parts)
+    expected, _ = reference_channels(recording)
+    assert np.max(np.abs(got - expected[:, 2])) <= 1e-6 * np.max(np.abs(expected))
+    first = headers[0]
+    assert first["version"] == 1 and first["sample_rate"] == pytest.approx(200e3)
+    assert first["centre_frequency"] == pytest.approx(156.2e6) and first["channels"] == [2]
+    assert [h["seq"] for h in headers[:-1]] == list(range(len(headers) - 1))
+    assert all(h["first_index"] == sum(x["count"] for x in headers[:i]) for i, h in enumerate(headers))
+
+
+def test_dead_block_is_named_and_run_fails(tmp_path, recording):
+    """A block process that dies is reported by name with its exit reason; the rest stop; exit non-zero."""
+    flow = write_flow(tmp_path, SOURCE.replace("chunk_size = 7000", "chunk_size = 1000\npace = true") + """
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [blocks.sink]
+        type = "discard"
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+
+        [[links]]
+        from = "split.channels"
+        to = "sink.samples"
+    """)
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow),
+                               "--out", str(tmp_path / "out"), "--report", str(tmp_path / "r.json")],
+                              stderr=subprocess.PIPE, text=True)
+    import json
+    victim = None
+    deadline = time.monotonic() + 60
+    while victim is None and time.monotonic() < deadline:
+        time.sleep(0.3)
+        out = subprocess.run(["pgrep", "-P", str(runner.pid), "-f", "bandloom.runtime.worker"],
+                             capture_output=True, text=True).stdout.split()
+        if len(out) == 3:
+            victim = int(out[1])
+    assert victim is not None
+    time.sleep(1.0)
+    os.kill(victim, 9)
+    _, stderr = runner.communicate(timeout=60)
+    assert runner.returncode == 1
+    report = json.loads((tmp_path / "r.json").read_text())
+    dead = [name for name, b in report["blocks"].items() if b["pid"] == victim]
+    assert len(dead) == 1
+    assert f"block '{dead[0]}' (pid {victim}) died (killed by SIGKILL)" in stderr
+    assert report["outcome"] == "failed"
+    assert "Traceback" not in stderr
