@@ -40,6 +40,19 @@ SAMPLE_TYPES = {"cf32": np.dtype(np.complex64), "f32": np.dtype(np.float32)}
 REQUIRED = object()
 
 
+def toml_repr(value):
+    """A value as it would be written in TOML, for messages: true, "text", 16, [1, 2]."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list):
+        return "[" + ", ".join(toml_repr(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {toml_repr(v)}" for k, v in value.items()) + " }"
+    return repr(value)
+
+
 class BlockError(ValueError):
     """A block refuses its parameters or its input streams; the message says why and what would do.
 
@@ -91,11 +104,11 @@ class Param:
         kind = self.kind
         if kind == "int":
             if isinstance(value, bool) or not isinstance(value, int):
-                raise ValueError(f"expected a whole number, got {value!r}")
+                raise ValueError(f"expected a whole number, got {toml_repr(value)}")
             value = int(value)
         elif kind == "float":
             if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise ValueError(f"expected a number, got {value!r}")
+                raise ValueError(f"expected a number, got {toml_repr(value)}")
             value = float(value)
         elif kind == "quantity":
             try:
@@ -104,22 +117,23 @@ class Param:
                 raise ValueError(str(error)) from None
         elif kind == "bool":
             if not isinstance(value, bool):
-                raise ValueError(f"expected true or false, got {value!r}")
+                raise ValueError(f"expected true or false, got {toml_repr(value)}")
         elif kind in ("str", "input-path", "output-path"):
             if not isinstance(value, str) or not value:
-                raise ValueError(f"expected {self.describe_type()} as a quoted string, got {value!r}")
+                raise ValueError(f"expected {self.describe_type()} as a quoted string, got {toml_repr(value)}")
         elif kind == "choice":
             if value not in self.choices:
                 hint = difflib.get_close_matches(str(value), [str(c) for c in self.choices], n=1)
-                extra = f"; did you mean {hint[0]!r}?" if hint else ""
-                raise ValueError(f"expected one of {', '.join(repr(c) for c in self.choices)}, got {value!r}{extra}")
+                extra = f" (did you mean {toml_repr(hint[0])}?)" if hint else ""
+                raise ValueError(f"expected one of {', '.join(toml_repr(c) for c in self.choices)}, "
+                                 f"got {toml_repr(value)}{extra}")
         elif kind == "list":
             if not isinstance(value, list):
-                raise ValueError(f"expected a list, got {value!r}")
+                raise ValueError(f"expected a list, got {toml_repr(value)}")
         if self.minimum is not None and isinstance(value, (int, float)) and value < self.minimum:
-            raise ValueError(f"expected at least {self.minimum:g}, got {value!r}")
+            raise ValueError(f"expected at least {self.minimum:g}, got {toml_repr(value)}")
         if self.maximum is not None and isinstance(value, (int, float)) and value > self.maximum:
-            raise ValueError(f"expected at most {self.maximum:g}, got {value!r}")
+            raise ValueError(f"expected at most {self.maximum:g}, got {toml_repr(value)}")
         return value
 
 

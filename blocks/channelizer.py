@@ -82,6 +82,14 @@ class Synthesis(Block):
             raise BlockError("expects a channels stream (several channels side by side); the link "
                              "selects a single channel — select two or more, or 'all'", port="channels")
         design = self._design(stream)
+        band_rate = stream.channel_spacing * stream.channel_count
+        if band_rate and abs(stream.sample_rate * design.decimation - band_rate) > 1e-9 * band_rate:
+            from .units import format_frequency
+            raise BlockError(f"sample-rate mismatch: the channels arrive at {format_frequency(stream.sample_rate)}, "
+                             f"but oversample = {design.oversampling} expects "
+                             f"{format_frequency(band_rate / design.decimation)} (the channelizer's "
+                             f"oversample is {stream.design.get('oversample')}); leave oversample out to match it",
+                             param="oversample")
         return {"samples": StreamInfo("samples", "cf32", stream.sample_rate * design.decimation,
                                       stream.centre_frequency, start_time=stream.start_time)}
 

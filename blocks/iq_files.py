@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -70,7 +71,8 @@ class IQReader(Block):
         try:
             size = path.stat().st_size
         except OSError as error:
-            raise BlockError(f"cannot read {path}: {error.strerror}", param="path") from None
+            relative = "" if Path(self.params["path"]).is_absolute() else " (paths are relative to the flow file's folder)"
+            raise BlockError(f"cannot read {path}: {error.strerror}{relative}", param="path") from None
         fmt = self.params["format"]
         sample_bytes = 2 * np.dtype(FORMATS[fmt][0]).itemsize
         tail = size % sample_bytes

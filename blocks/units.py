@@ -17,6 +17,9 @@ UNIT_FAMILIES = {
     "dBFS": {"dbfs": 1.0},
 }
 
+UNIT_WORDS = {"Hz": ("Hz", "kHz", "MHz", "GHz"), "s": ("s", "ms", "us", "ns", "min", "h"),
+              "dB": ("dB",), "dBFS": ("dBFS",)}
+
 _QUANTITY = re.compile(r"^\s*([+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-Za-zµ]*)\s*$")
 
 
@@ -28,24 +31,28 @@ def parse_quantity(value, unit):
     """Return ``value`` as a float in ``unit`` (a key of UNIT_FAMILIES), or raise UnitError."""
     family = UNIT_FAMILIES[unit]
     if isinstance(value, bool):
-        raise UnitError(f"expected a number in {unit}, got {value!r}")
+        raise UnitError(f"expected a number in {unit}, got {'true' if value else 'false'}")
     if isinstance(value, (int, float)):
         return float(value)
     if not isinstance(value, str):
-        raise UnitError(f"expected a number in {unit} such as {_example(unit)!r}, got {value!r}")
+        raise UnitError(f'expected a number in {unit} such as "{_example(unit)}", got {_quoted(value)}')
     match = _QUANTITY.match(value)
     if not match:
-        raise UnitError(f"expected a number in {unit} such as {_example(unit)!r}, got {value!r}")
+        raise UnitError(f'expected a number in {unit} such as "{_example(unit)}", got {_quoted(value)}')
     number, word = float(match.group(1)), match.group(2)
     if not word:
         return number
     if word == "mHz":
-        raise UnitError(f"{value!r} is in millihertz; did you mean MHz?")
+        raise UnitError(f"{_quoted(value)} is in millihertz; did you mean MHz?")
     scale = family.get(word.lower())
     if scale is None:
-        known = ", ".join(sorted({k for k in family}, key=len))
-        raise UnitError(f"unit {word!r} in {value!r} is not a unit of {unit} (use one of: {known})")
+        known = ", ".join(UNIT_WORDS[unit])
+        raise UnitError(f"{word!r} in {_quoted(value)} is not a unit of {unit}; use one of: {known}")
     return number * scale
+
+
+def _quoted(value):
+    return f'"{value}"' if isinstance(value, str) else repr(value)
 
 
 def _example(unit):

@@ -44,7 +44,8 @@ def add_check_arguments(parser):
     parser.add_argument("--out", help="output folder the run would use (default: current folder)")
 
 
-def run_check(args, out, log=sys.stderr):
+def run_check(args, out, log=None):
+    log = log or sys.stderr
     flow = _load(args, log)
     if flow is None:
         return 1
@@ -68,7 +69,8 @@ def add_run_arguments(parser):
     parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
 
 
-def run_run(args, out, log=sys.stderr):
+def run_run(args, out, log=None):
+    log = log or sys.stderr
     flow = _load(args, log)
     if flow is None:
         return 1
@@ -99,7 +101,8 @@ def _default(param):
         if isinstance(param.default, float) else str(param.default)
 
 
-def run_blocks(args, out, log=sys.stderr):
+def run_blocks(args, out, log=None):
+    log = log or sys.stderr
     registry = _registry(log)
     if not args.type:
         rows = [[name, registry.origins[name], registry.types[name].summary] for name in registry.names()]
@@ -127,7 +130,8 @@ def add_keys_arguments(parser):
     parser.add_argument("folder", help="folder to create the key pairs in")
 
 
-def run_keys(args, out, log=sys.stderr):
+def run_keys(args, out, log=None):
+    log = log or sys.stderr
     import zmq.auth
 
     folder = Path(args.folder)

@@ -18,7 +18,7 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from bandloom.blocks.block import BlockContext, BlockError
+from bandloom.blocks.block import BlockContext, BlockError, toml_repr
 from bandloom.blocks.units import UnitError, format_frequency, parse_quantity
 
 TOP_LEVEL_KEYS = ("flow", "blocks", "links")
@@ -62,7 +62,7 @@ class FlowErrors(Exception):
 
 def _did_you_mean(name, candidates):
     match = difflib.get_close_matches(str(name), [str(c) for c in candidates], n=1, cutoff=0.6)
-    return f"; did you mean {match[0]!r}?" if match else ""
+    return f" (did you mean {match[0]!r}?)" if match else ""
 
 
 def _known(candidates):
@@ -95,6 +95,10 @@ class _Locator:
         elif path[0] == "flow":
             table, rest, occurrence = ("flow",), path[1:], 0
         else:
+            for i, line in enumerate(self.lines):
+                h = self._header(line)
+                if h and h[1][0] == path[0]:
+                    return i + 1
             table, rest, occurrence = None, path, 0
         start = 0
         if table is not None:
@@ -235,7 +239,7 @@ def _check_endpoint(text):
             return "ipc paths are limited to about 100 bytes; use a shorter path", True
         return None, True
     return (f"expected 'tcp://HOST:PORT' (for example 'tcp://127.0.0.1:5601') or 'ipc://PATH', "
-            f"got {text!r}"), False
+            f"got {toml_repr(text)}"), False
 
 
 class _Checker:
@@ -246,6 +250,7 @@ class _Checker:
         self.output_dir = Path(output_dir) if output_dir else Path.cwd()
         self.locator = _Locator(text)
         self.problems = []
+        self.claimed = set()         # (block, input port) named by some link, valid or not
 
     def problem(self, key_path, message):
         where = ""
@@ -268,7 +273,7 @@ class _Checker:
                 self.problem(("flow", key), f"unknown key; expected one of {_known(FLOW_KEYS)}"
                              f"{_did_you_mean(key, FLOW_KEYS)}")
             elif not isinstance(value, str):
-                self.problem(("flow", key), f"expected text, got {value!r}")
+                self.problem(("flow", key), f"expected text, got {toml_repr(value)}")
         blocks = data.get("blocks")
         if not isinstance(blocks, dict) or not blocks:
             self.problem(("blocks",), "a flow needs at least one block: add a [blocks.NAME] table with a type")
@@ -294,7 +299,7 @@ class _Checker:
             self.problem(("blocks", name), "block names start with a letter and use letters, digits, '-' and '_'")
             return None
         if not isinstance(table, dict):
-            self.problem(("blocks", name), f"expected a table [blocks.{name}] with a type, got {table!r}")
+            self.problem(("blocks", name), f"expected a table [blocks.{name}] with a type, got {toml_repr(table)}")
             return None
         type_name = table.get("type")
         if type_name is None:
@@ -303,7 +308,7 @@ class _Checker:
         cls = self.registry.types.get(type_name)
         if cls is None:
             self.problem(("blocks", name, "type"), f"unknown block type {type_name!r}"
-                         f"{_did_you_mean(type_name, self.registry.types)} (see 'bandloom blocks')")
+                         f"{_did_you_mean(type_name, self.registry.types)}; 'bandloom blocks' lists the types")
             return None
         params = {}
         declared = {p.name: p for p in cls.parameters}
@@ -378,7 +383,7 @@ class _Checker:
         elif "endpoint" in table:
             endpoint = table["endpoint"]
             if not isinstance(endpoint, str):
-                self.problem(at + ("endpoint",), f"expected text such as 'tcp://127.0.0.1:5601', got {endpoint!r}")
+                self.problem(at + ("endpoint",), f"expected text such as 'tcp://127.0.0.1:5601', got {toml_repr(endpoint)}")
                 ok = False
             else:
                 message, loopback = _check_endpoint(endpoint)
@@ -392,6 +397,10 @@ class _Checker:
                     ok = False
         else:
             target = self.port_ref(at + ("to",), table.get("to"), decls, declared_names, "input")
+            if target:
+                self.claimed.add(target)
+            elif _parse_ref(table.get("to")) and _parse_ref(table["to"])[0] in decls:
+                self.claimed.add((_parse_ref(table["to"])[0], None))   # a broken link meant to feed it
             if target and decls.get(target[0]) and decls[target[0]].per_channel is not None:
                 self.problem(at + ("to",), f"{target[0]} is per-channel; it is fed by its per_channel "
                              f"rule, not by links")
@@ -400,23 +409,23 @@ class _Checker:
             ok = False
         queue = table.get("queue", DEFAULT_QUEUE)
         if isinstance(queue, bool) or not isinstance(queue, int) or not 1 <= queue <= 100000:
-            self.problem(at + ("queue",), f"expected a whole number of messages from 1 to 100000, got {queue!r}")
+            self.problem(at + ("queue",), f"expected a whole number of messages from 1 to 100000, got {toml_repr(queue)}")
             ok = False
         when_full = table.get("when_full", "wait")
         if when_full not in ("wait", "drop"):
             self.problem(at + ("when_full",), f"expected 'wait' (lossless, slows the producer) or 'drop' "
-                         f"(counted, flagged drops), got {when_full!r}")
+                         f"(counted, flagged drops), got {toml_repr(when_full)}")
             ok = False
         insecure = table.get("insecure", False)
         if not isinstance(insecure, bool):
-            self.problem(at + ("insecure",), f"expected true or false, got {insecure!r}")
+            self.problem(at + ("insecure",), f"expected true or false, got {toml_repr(insecure)}")
             ok = False
         keys = table.get("keys")
         if keys is not None:
             keys_dir = self.path.parent / keys if isinstance(keys, str) else None
             if keys_dir is None or not (keys_dir / "server.key_secret").is_file():
                 self.problem(at + ("keys",), f"expected a folder made by 'bandloom keys' holding "
-                             f"server.key_secret, got {keys!r}")
+                             f"server.key_secret, got {toml_repr(keys)}")
                 ok = False
             elif endpoint is None:
                 self.problem(at + ("keys",), "keys apply to links with an endpoint")
@@ -437,7 +446,7 @@ class _Checker:
             self.problem(at, str(error))
             return None
         if result < 0:
-            self.problem(at, f"expected a frequency >= 0, got {value!r}")
+            self.problem(at, f"expected a frequency >= 0, got {toml_repr(value)}")
             return None
         return result
 
@@ -447,7 +456,7 @@ class _Checker:
             return None
         ref = _parse_ref(text)
         if ref is None:
-            self.problem(at, f"expected \"block.port\", got {text!r}")
+            self.problem(at, f"expected \"block.port\", got {toml_repr(text)}")
             return None
         block, port = ref
         decl = decls.get(block)
@@ -528,7 +537,8 @@ class _Checker:
                     self.problem(("blocks", name), f"input {port!r} has {len(origins)} producers ({where}); "
                                  f"an input takes exactly one")
             for port in decl.cls.inputs:
-                if port.required and port.name not in counts:
+                if port.required and port.name not in counts and (name, port.name) not in self.claimed \
+                        and (name, None) not in self.claimed:
                     self.problem(("blocks", name), f"input {port.name!r} ({port.doc}) is not connected; add a "
                                  f"[[links]] table with to = \"{name}.{port.name}\"")
 
@@ -548,7 +558,7 @@ class _Checker:
         available = (f"channels {min(stream.channels)}..{max(stream.channels)}" if stream.channels else "no channels")
         for item in items:
             if isinstance(item, bool):
-                self.problem(at, f"expected a channel number, a range \"A..B\", a frequency or \"all\", got {item!r}")
+                self.problem(at, f"expected a channel number, a range \"A..B\", a frequency or \"all\", got {toml_repr(item)}")
                 return None
             if isinstance(item, int):
                 picked = [item]
@@ -563,7 +573,7 @@ class _Checker:
                     hz = parse_quantity(item, "Hz")
                 except UnitError:
                     self.problem(at, f"expected a channel number, a range \"A..B\", a frequency such as "
-                                 f"\"156.8 MHz\" or \"all\", got {item!r}")
+                                 f"\"156.8 MHz\" or \"all\", got {toml_repr(item)}")
                     return None
                 if not isinstance(item, str) or not re.search(r"[A-Za-z]", item):
                     self.problem(at, f"{item!r} has no unit: write a channel number without quotes, or a "
@@ -579,7 +589,7 @@ class _Checker:
                     return None
                 picked = [stream.channels[nearest]]
             else:
-                self.problem(at, f"expected a channel number, a range \"A..B\", a frequency or \"all\", got {item!r}")
+                self.problem(at, f"expected a channel number, a range \"A..B\", a frequency or \"all\", got {toml_repr(item)}")
                 return None
             for channel in picked:
                 if channel not in lookup:
@@ -623,7 +633,7 @@ class _Checker:
                 ref = _parse_ref(decl.per_channel["from"])
                 source_decl = decls[ref[0]]
                 port = next((p for origin, p in decl.feeds if origin == "per_channel"), None)
-                if port is None or ref[0] not in made:
+                if port is None or not made.get(ref[0]):
                     continue
                 if source_decl.per_channel:
                     if "select" in decl.per_channel:
@@ -663,8 +673,8 @@ class _Checker:
                 for link in links:
                     if link.target != name:
                         continue
-                    if link.source not in made:
-                        break
+                    if not made.get(link.source):
+                        continue
                     if decls[link.source].per_channel:
                         self.problem(("links", link.index, "from"), f"{link.source} is per-channel "
                                      f"({len(made[link.source])} copies); feed its outputs to blocks that are "
@@ -774,6 +784,8 @@ def _syntax_problem(path, error):
     column = getattr(error, "colno", None) or (int(m.group(2)) if m else None)
     message = re.sub(r"\s*\(at line \d+, column \d+\)", "", getattr(error, "msg", text) or text)
     message = re.sub(r"\s*\(at end of document\)", " (at the end of the file)", message)
+    if message.startswith("Illegal character '\\n'"):
+        message += " — a line ends inside a value; is a closing quote or bracket missing?"
     return Problem(str(path), "", f"TOML syntax error: {message}", line, column)
 
 

@@ -1,0 +1,79 @@
+"""The wire format: round trip of a message, and every kind of malformed message refused with a clear reason."""
+
+import msgpack
+import numpy as np
+import pytest
+import zmq
+
+from bandloom.blocks.block import StreamInfo
+from bandloom.runtime import wire
+from bandloom.runtime.links import Inlet
+
+
+def header(**changes):
+    fields = dict(version=1, stream="a.b -> c.d", seq=0, first_index=0, count=4, width=1, sample_type="cf32",
+                  sample_rate=48000.0, centre_frequency=0.0, flags=0, dropped=0)
+    fields.update(changes)
+    return msgpack.packb({k: v for k, v in fields.items() if v is not ...}, use_bin_type=True)
+
+
+def test_encode_decode_round_trip():
+    """encode_header's output decodes to the same fields, and the payload views the samples."""
+    raw = wire.encode_header(stream="s", seq=3, first_index=100, count=2, width=3, sample_type="cf32",
+                             sample_rate=1e5, centre_frequency=1e8, channels=[0, 1, 5],
+                             channel_frequencies=[1e8, 1.1e8, 0.9e8])
+    h = wire.decode_header(raw)
+    assert (h["seq"], h["first_index"], h["count"], h["width"], h["channels"]) == (3, 100, 2, 3, [0, 1, 5])
+    data = np.arange(6, dtype=np.complex64)
+    assert np.array_equal(wire.decode_payload(h, data.tobytes()), data.reshape(2, 3))
+
+
+@pytest.mark.parametrize("raw,message", [
+    (b"\x00" * (65 * 1024), "more than the 65536-byte limit"),
+    (b"\xc1", "not valid msgpack"),
+    (msgpack.packb([1, 2]), "msgpack list, not a map"),
+    (header(seq=...), "lacks the field 'seq'"),
+    (header(count="4"), "field 'count' is '4', not a int"),
+    (header(count=True), "field 'count' is True"),
+    (header(version=2), "version 2 is not the supported version 1"),
+    (header(sample_type="pickle"), "sample_type 'pickle' is not one of"),
+    (header(first_index=-1), "must not be negative"),
+    (header(sample_rate=0.0), "sample_rate 0.0 is not a positive number"),
+    (header(width=0), "width 0 is outside"),
+    (msgpack.packb({"version": msgpack.ExtType(1, b"x")}), "extension type 1"),
+])
+def test_bad_headers_are_refused(raw, message):
+    """Each malformed header raises WireError naming the field and the rule."""
+    with pytest.raises(wire.WireError, match=message.replace("(", r"\(")):
+        wire.decode_header(raw)
+
+
+def test_payload_length_must_match_count_and_width():
+    """count x width x item size must equal the payload's length."""
+    h = wire.decode_header(header(count=4))
+    with pytest.raises(wire.WireError, match="payload is 24 bytes; count 4 x width 1 x 8 bytes says 32"):
+        wire.decode_payload(h, b"\x00" * 24)
+
+
+def test_inlet_names_the_link_and_refuses_wrong_shape(tmp_path):
+    """An inlet refuses a well-formed message whose type does not match its link, and a 3-frame message."""
+    ctx = zmq.Context()
+    stream = StreamInfo("samples", "cf32", 48000.0)
+    endpoint = f"ipc://{tmp_path}/x"
+    inlet = Inlet(ctx, {"link": 0, "endpoint": endpoint, "stream": stream, "label": "a.b -> c.d"}, "samples")
+    push = ctx.socket(zmq.PUSH)
+    push.connect(endpoint)
+    try:
+        push.send_multipart([header(sample_type="f32", count=1), b"\x00" * 4])
+        with pytest.raises(wire.WireError, match="carries f32 x 1, the link was set up for cf32 x 1"):
+            inlet.receive()
+        push.send_multipart([header(), b"", b""])
+        with pytest.raises(wire.WireError, match="3 frames, not 2"):
+            inlet.receive()
+        push.send_multipart([header(count=1, dropped=5, first_index=5, flags=2), b"\x00" * 8])
+        chunk = inlet.receive()
+        assert (chunk.first_index, chunk.dropped, chunk.discontinuity) == (5, 5, True)
+    finally:
+        push.close(linger=0)
+        inlet.close()
+        ctx.term()
