@@ -8,6 +8,7 @@ import numpy as np
 
 from ._bank_params import DESIGN_KEYS, DESIGN_PARAMS, make_design
 from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+from .dsp.mixing import shift_frequency
 
 
 class Channelizer(Block):
@@ -18,6 +19,8 @@ class Channelizer(Block):
               "centre frequency (k >= M/2 counts down from the top: FFT order)", minimum=2),
         Param("oversample", "int", "channel rate as a multiple of the channel spacing (M / decimation); "
               "2 or more for exact reconstruction", default=2, minimum=1),
+        Param("grid_offset", "quantity", "put the channel raster's centre this far from the stream's centre "
+              "frequency (the band is shifted before the bank)", default=0.0, unit="Hz"),
     ) + DESIGN_PARAMS
     inputs = (Port("samples", "samples", "wideband IQ"),)
     outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
@@ -28,9 +31,13 @@ class Channelizer(Block):
     def output_streams(self, inputs):
         design = self._design()
         wide = inputs["samples"]
-        offsets = np.fft.fftfreq(design.channels) * wide.sample_rate
+        grid = self.params.get("grid_offset") or 0.0
+        if abs(grid) >= wide.sample_rate / 2:
+            raise BlockError(f"grid_offset = {grid:g} Hz is outside the band (+-{wide.sample_rate / 2:g} Hz)",
+                             param="grid_offset")
+        offsets = np.fft.fftfreq(design.channels) * wide.sample_rate + grid
         knobs = {k: self.params.get(k) for k in DESIGN_KEYS}
-        knobs.update(channels=design.channels, oversample=design.oversampling)
+        knobs.update(channels=design.channels, oversample=design.oversampling, grid_offset=grid)
         return {"channels": StreamInfo(
             "channels", "cf32", wide.sample_rate / design.decimation, wide.centre_frequency,
             channels=tuple(range(design.channels)),
@@ -40,8 +47,12 @@ class Channelizer(Block):
 
     def start(self, inputs):
         self.bank = self._design().analysis_bank()
+        self.shift = (self.params.get("grid_offset") or 0.0) / inputs["samples"].sample_rate
 
     def consume(self, port, chunk):
+        if self.shift:
+            chunk = Chunk(shift_frequency(chunk.data, chunk.first_index, -self.shift), chunk.first_index,
+                          chunk.discontinuity, chunk.dropped)
         out = []
         if chunk.dropped:
             # Missing input is zeros in absolute time; frames that saw only the
@@ -91,13 +102,15 @@ class Synthesis(Block):
                              f"oversample is {stream.design.get('oversample')}); leave oversample out to match it",
                              param="oversample")
         return {"samples": StreamInfo("samples", "cf32", stream.sample_rate * design.decimation,
-                                      stream.centre_frequency, start_time=stream.start_time)}
+                                      stream.centre_frequency, start_time=stream.start_time,
+                                      design={"round_trip_delay": design.delay})}
 
     def start(self, inputs):
         stream = inputs["channels"]
         self.design = self._design(stream)
         self.bank = self.design.synthesis_bank()
         self.columns = np.asarray(stream.channels)
+        self.shift = (stream.design.get("grid_offset") or 0.0) / (stream.sample_rate * self.design.decimation)
 
     def consume(self, port, chunk):
         out = []
@@ -110,4 +123,6 @@ class Synthesis(Block):
         frames = np.zeros((chunk.count, self.design.channels), dtype=np.complex64)
         frames[:, self.columns] = chunk.data.reshape(chunk.count, -1)
         out.append(Chunk(self.bank.process(frames), first))
+        if self.shift:
+            out = [Chunk(shift_frequency(c.data, c.first_index, self.shift), c.first_index) for c in out]
         return {"samples": out}

@@ -9,6 +9,9 @@ interleaved signed integers, scaled by 1/32768 and 1/128 to full scale 1.0;
 
 from __future__ import annotations
 
+import datetime
+import json
+import re
 import sys
 import time
 from pathlib import Path
@@ -25,6 +28,52 @@ FORMATS = {
     "ci8": (np.int8, 1 / 128, 0.0),
     "cu8": (np.uint8, 1 / 127.5, -127.5),
 }
+
+
+SIGMF_VERSION = "1.2.0"
+
+
+def sigmf_meta_path(data_path):
+    """Where the SigMF metadata of ``data_path`` lives: same name, suffix .sigmf-meta."""
+    data_path = Path(data_path)
+    return data_path.with_suffix(".sigmf-meta")
+
+
+def read_sigmf(meta_path):
+    """(format, byte_order, sample_rate, frequency, datetime) from a SigMF metadata file.
+
+    Field names from the SigMF specification (global core:datatype,
+    core:sample_rate; captures core:frequency, core:datetime); the tests
+    check what bandloom writes against the sigmf package's published schema.
+    """
+    try:
+        meta = json.loads(Path(meta_path).read_text())
+        core = meta["global"]
+        datatype = core["core:datatype"]
+    except (OSError, ValueError, KeyError, TypeError) as error:
+        raise BlockError(f"cannot use {meta_path} as SigMF metadata: {error}", param="metadata") from None
+    m = re.fullmatch(r"c(f32|f64|i16|i8|u8)(_le|_be)?", datatype)
+    if not m:
+        raise BlockError(f"{meta_path}: core:datatype {datatype!r} is not a complex format this reader takes "
+                         f"(cf32, cf64, ci16, ci8, cu8; _le or _be)", param="metadata")
+    capture = (meta.get("captures") or [{}])[0]
+    return ("c" + m.group(1), "big" if m.group(2) == "_be" else "little", core.get("core:sample_rate"),
+            capture.get("core:frequency"), capture.get("core:datetime"))
+
+
+def write_sigmf(data_path, *, datatype, sample_rate, frequency, start_time, description, gaps=()):
+    meta = {
+        "global": {"core:datatype": datatype, "core:sample_rate": float(sample_rate),
+                   "core:version": SIGMF_VERSION, "core:num_channels": 1,
+                   "core:recorder": "bandloom", "core:description": description},
+        "captures": [dict({"core:sample_start": 0, "core:frequency": float(frequency)},
+                          **({"core:datetime": start_time} if start_time else {}))],
+        "annotations": [{"core:sample_start": int(start), "core:sample_count": int(count),
+                         "core:comment": "zero-filled: these samples were lost upstream"} for start, count in gaps],
+    }
+    path = sigmf_meta_path(data_path)
+    path.write_text(json.dumps(meta, indent=2) + "\n")
+    return path
 
 
 def component_dtype(sample_format, byte_order):
@@ -50,11 +99,17 @@ class IQReader(Block):
     is_source = True
     parameters = (
         Param("path", "input-path", "the file, relative to the flow file's folder"),
-        Param("format", "choice", "sample format", default="cf32", choices=tuple(FORMATS)),
-        Param("byte_order", "choice", "byte order of multi-byte formats", default="little",
-              choices=("little", "big")),
-        Param("sample_rate", "quantity", "sample rate of the recording", unit="Hz", minimum=1e-9),
-        Param("centre_frequency", "quantity", "RF frequency at 0 Hz of the recording", default=0.0, unit="Hz"),
+        Param("metadata", "choice", "'sigmf' reads format, rate, centre frequency and start time from the "
+              "SigMF file beside the data (NAME.sigmf-meta); 'auto' does so when one is there", default="auto",
+              choices=("auto", "sigmf", "none")),
+        Param("format", "choice", "sample format (default cf32, or the metadata's)", default=None,
+              choices=tuple(FORMATS)),
+        Param("byte_order", "choice", "byte order of multi-byte formats (default little, or the metadata's)",
+              default=None, choices=("little", "big")),
+        Param("sample_rate", "quantity", "sample rate of the recording (default: the metadata's)", default=None,
+              unit="Hz", minimum=1e-9),
+        Param("centre_frequency", "quantity", "RF frequency at 0 Hz of the recording (default: the "
+              "metadata's, else 0)", default=None, unit="Hz"),
         Param("start", "quantity", "skip this much of the recording first", default=0.0, unit="s", minimum=0),
         Param("duration", "quantity", "read at most this much (0 = to the end)", default=0.0, unit="s", minimum=0),
         Param("repeat", "int", "play the selection this many times in all (looping)", default=1, minimum=1),
@@ -66,14 +121,33 @@ class IQReader(Block):
     )
     outputs = (Port("samples", "samples", "IQ samples, full scale 1.0"),)
 
+    def _settings(self):
+        """Format, byte order, rate, centre and start time: the flow's values, else the metadata's."""
+        path = self.context.input_path(self.params["path"])
+        meta_path = sigmf_meta_path(path)
+        meta = (None, None, None, None, None)
+        if self.params["metadata"] == "sigmf" or (self.params["metadata"] == "auto" and meta_path.exists()):
+            if not meta_path.exists():
+                raise BlockError(f"metadata = \"sigmf\" but there is no {meta_path}", param="metadata")
+            meta = read_sigmf(meta_path)
+        fmt = self.params.get("format") or meta[0] or "cf32"
+        order = self.params.get("byte_order") or meta[1] or "little"
+        rate = self.params.get("sample_rate") or meta[2]
+        if not rate:
+            raise BlockError("missing sample_rate: give it here or in a SigMF metadata file beside the data "
+                             f"({meta_path.name})", param="sample_rate")
+        centre = self.params.get("centre_frequency")
+        centre = centre if centre is not None else (meta[3] or 0.0)
+        return fmt, order, float(rate), float(centre), meta[4]
+
     def _geometry(self):
         path = self.context.input_path(self.params["path"])
+        fmt, order, rate, centre, when = self._settings()
         try:
             size = path.stat().st_size
         except OSError as error:
             relative = "" if Path(self.params["path"]).is_absolute() else " (paths are relative to the flow file's folder)"
             raise BlockError(f"cannot read {path}: {error.strerror}{relative}", param="path") from None
-        fmt = self.params["format"]
         sample_bytes = 2 * np.dtype(FORMATS[fmt][0]).itemsize
         tail = size % sample_bytes
         if tail and self.params["trailing_bytes"] == "error":
@@ -81,7 +155,6 @@ class IQReader(Block):
                              f"samples ({tail} bytes left over); check the format, or set "
                              f"trailing_bytes = \"drop\"", param="path")
         total = size // sample_bytes
-        rate = self.params["sample_rate"]
         first = int(round(self.params["start"] * rate))
         if first > total:
             raise BlockError(f"start = {self.params['start']:g} s is past the end of {path} "
@@ -93,11 +166,12 @@ class IQReader(Block):
 
     def output_streams(self, inputs):
         self._geometry()
-        return {"samples": StreamInfo("samples", "cf32", self.params["sample_rate"],
-                                      self.params["centre_frequency"])}
+        fmt, order, rate, centre, when = self._settings()
+        return {"samples": StreamInfo("samples", "cf32", rate, centre, start_time=when)}
 
     def start(self, inputs):
         path, self.sample_bytes, tail, self.first, self.count = self._geometry()
+        self.format, self.byte_order, self.rate, _, _ = self._settings()
         if tail:
             print(f"{self.context.name}: warning: dropping the last {tail} bytes of {path} "
                   f"(a partial sample)", file=sys.stderr)
@@ -122,12 +196,12 @@ class IQReader(Block):
         n = len(raw) // self.sample_bytes
         if n == 0:
             return None
-        data = decode_iq(raw[:n * self.sample_bytes], self.params["format"], self.params["byte_order"])
+        data = decode_iq(raw[:n * self.sample_bytes], self.format, self.byte_order)
         chunk = Chunk(data, self.index)
         self.position += n
         self.index += n
         if self.params["pace"]:
-            due = self.started + self.index / self.params["sample_rate"]
+            due = self.started + self.index / self.rate
             delay = due - time.monotonic()
             if delay > 0:
                 time.sleep(delay)
@@ -145,13 +219,21 @@ class IQWriter(Block):
         Param("path", "output-path", "the file, relative to the output folder; may use {channel}, "
               "{frequency} (Hz) and {frequency_mhz} placeholders"),
         Param("format", "choice", "sample format written", default="cf32", choices=("cf32", "ci16")),
+        Param("metadata", "bool", "also write SigMF metadata beside the file (NAME.sigmf-meta): rate, "
+              "centre frequency, datatype, start time, and the flow and block that made it", default=True),
     )
     inputs = (Port("samples", "samples", "IQ samples"),)
 
     def output_streams(self, inputs):
+        path = self.params["path"]
+        if self.params["metadata"] and path.endswith(".sigmf-meta"):
+            raise BlockError("path ends in .sigmf-meta, the name the metadata file takes; name the data "
+                             "NAME.sigmf-data", param="path")
         return {}
 
     def start(self, inputs):
+        self.stream = inputs["samples"]
+        self.gaps = []
         self.path = self.context.output_path(self.params["path"])
         self.path.parent.mkdir(parents=True, exist_ok=True)
         self.file = open(self.path, "wb")
@@ -167,7 +249,9 @@ class IQWriter(Block):
 
     def consume(self, port, chunk):
         if chunk.dropped:
-            # A raw file has no way to mark a gap: keep absolute time with zeros.
+            # A raw file has no way to mark a gap: keep absolute time with zeros
+            # (and say so in the metadata's annotations).
+            self.gaps.append((self.written + self.zero_filled, chunk.dropped))
             self._write(np.zeros(chunk.dropped, dtype=np.complex64))
             self.zero_filled += chunk.dropped
         self._write(chunk.data)
@@ -178,6 +262,13 @@ class IQWriter(Block):
         if getattr(self, "file", None):
             self.file.flush()
             self.file.close()
+            if self.params["metadata"]:
+                s = self.stream
+                what = f"channel {s.channels[0]} " if s.channels else ""
+                write_sigmf(self.path, datatype=self.params["format"] + "_le", sample_rate=s.sample_rate,
+                            frequency=s.centre_frequency, start_time=s.start_time, gaps=self.gaps,
+                            description=f"{what}written by bandloom block '{self.context.name}' of flow "
+                                        f"{self.context.flow_path}")
 
     def report(self):
         gaps = f", {self.zero_filled} zero-filled for gaps" if getattr(self, "zero_filled", 0) else ""

@@ -1,0 +1,125 @@
+"""Tuning and audio: frequency shift, rational resampler, FM and AM demodulators."""
+
+from __future__ import annotations
+
+from fractions import Fraction
+
+import numpy as np
+
+from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+from .dsp.mixing import shift_frequency
+from .units import format_frequency
+
+
+class Shift(Block):
+    type_name = "shift"
+    summary = "Move a signal in frequency: the one at 'offset' from the centre comes down to 0 Hz."
+    parameters = (Param("offset", "quantity", "offset from the centre frequency to bring to 0 Hz "
+                        "(positive = above the centre)", unit="Hz"),)
+    inputs = (Port("samples", "samples", "IQ"),)
+    outputs = (Port("samples", "samples", "IQ, centre frequency moved by 'offset'"),)
+
+    def output_streams(self, inputs):
+        s = inputs["samples"]
+        if abs(self.params["offset"]) >= s.sample_rate / 2:
+            raise BlockError(f"offset = {format_frequency(self.params['offset'])} is outside the stream's "
+                             f"+-{format_frequency(s.sample_rate / 2)}", param="offset")
+        return {"samples": StreamInfo("samples", "cf32", s.sample_rate, s.centre_frequency + self.params["offset"],
+                                      start_time=s.start_time)}
+
+    def start(self, inputs):
+        self.rate = inputs["samples"].sample_rate
+        self.cycles_per_sample = self.params["offset"] / self.rate
+
+    def consume(self, port, chunk):
+        return {"samples": [Chunk(shift_frequency(chunk.data, chunk.first_index, -self.cycles_per_sample),
+                                  chunk.first_index)]}
+
+
+def rational_ratio(target, rate):
+    """up/down with small terms such that rate * up / down == target, or BlockError."""
+    ratio = Fraction(target / rate).limit_denominator(10000)
+    if abs(float(ratio) * rate - target) > 1e-6 * target or max(ratio.numerator, ratio.denominator) > 10000:
+        raise BlockError(f"cannot reach {format_frequency(target)} exactly from {format_frequency(rate)} with a ratio "
+                         f"of whole numbers up to 10000", param="rate")
+    return ratio.numerator, ratio.denominator
+
+
+class Resample(Block):
+    type_name = "resample"
+    summary = "Change the sample rate by a ratio of whole numbers (same output as scipy's resample_poly)."
+    parameters = (Param("rate", "quantity", "the output sample rate; it must be reachable exactly",
+                        unit="Hz", minimum=1e-6),)
+    inputs = (Port("samples", "samples", "IQ or audio", sample_types=("cf32", "f32")),)
+    outputs = (Port("samples", "samples", "the same signal at the new rate", sample_types=("cf32", "f32")),)
+
+    def output_streams(self, inputs):
+        s = inputs["samples"]
+        rational_ratio(self.params["rate"], s.sample_rate)
+        return {"samples": StreamInfo("samples", s.sample_type, self.params["rate"], s.centre_frequency,
+                                      start_time=s.start_time)}
+
+    def start(self, inputs):
+        from .dsp.resample import Resampler
+        s = inputs["samples"]
+        self.dtype = s.dtype
+        up, down = rational_ratio(self.params["rate"], s.sample_rate)
+        self.resampler = Resampler(up, down)
+        self.index = 0
+
+    def _chunk(self, values):
+        chunk = Chunk(values.astype(self.dtype), self.index)
+        self.index += len(values)
+        return {"samples": [chunk]} if len(values) else {}
+
+    def consume(self, port, chunk):
+        return self._chunk(self.resampler.process(chunk.data))
+
+    def finish(self):
+        return self._chunk(self.resampler.finish())
+
+
+class FMDemod(Block):
+    type_name = "fm-demod"
+    summary = "Frequency-demodulate a channel to audio (1.0 = full_scale deviation)."
+    parameters = (
+        Param("full_scale", "quantity", "deviation that gives audio level 1.0", default=5000.0, unit="Hz",
+              minimum=1e-3),
+        Param("deemphasis", "quantity", "de-emphasis time constant, 0 for none (750 us is usual for "
+              "narrowband voice, 50 or 75 us for broadcast)", default=0.0, unit="s", minimum=0.0),
+        Param("squelch", "quantity", "mute the audio while the channel is weaker than this (default: never "
+              "mute)", default=None, unit="dBFS"),
+    )
+    inputs = (Port("samples", "samples", "one channel of IQ, carrier at 0 Hz"),)
+    outputs = (Port("audio", "samples", "audio, float32, at the channel rate", sample_types=("f32",)),)
+
+    def output_streams(self, inputs):
+        s = inputs["samples"]
+        return {"audio": StreamInfo("samples", "f32", s.sample_rate, s.centre_frequency, channels=s.channels,
+                                    channel_frequencies=s.channel_frequencies, start_time=s.start_time)}
+
+    def start(self, inputs):
+        from .dsp.demod import FMDemodulator
+        self.demod = FMDemodulator(inputs["samples"].sample_rate, full_scale=self.params["full_scale"],
+                                   deemphasis=self.params["deemphasis"], squelch=self.params["squelch"])
+
+    def consume(self, port, chunk):
+        return {"audio": [Chunk(self.demod.process(chunk.data), chunk.first_index)]}
+
+
+class AMDemod(Block):
+    type_name = "am-demod"
+    summary = "Envelope-demodulate a channel to audio (1.0 = 100 % modulation)."
+    parameters = (Param("dc_cutoff", "quantity", "the carrier is removed below this frequency", default=50.0,
+                        unit="Hz", minimum=0.1),)
+    inputs = (Port("samples", "samples", "one channel of IQ, carrier at 0 Hz"),)
+    outputs = (Port("audio", "samples", "audio, float32, at the channel rate", sample_types=("f32",)),)
+
+    output_streams = FMDemod.output_streams
+
+    def start(self, inputs):
+        from .dsp.demod import AMDemodulator
+        self.demod = AMDemodulator(inputs["samples"].sample_rate, dc_cutoff=self.params["dc_cutoff"])
+
+    def consume(self, port, chunk):
+        return {"audio": [Chunk(self.demod.process(chunk.data), chunk.first_index)]}

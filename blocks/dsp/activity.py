@@ -1,0 +1,156 @@
+"""Channel activity: power per interval, a robust noise floor, on/off events with hysteresis.
+
+Input rows are complex samples of C channels (one column each) at ``rate``
+rows per second. Every ``interval`` seconds each channel's mean power
+``mean |y|^2`` becomes one level in dBFS (full scale: power 1.0).
+
+Noise floor: with 4 or more channels, the median over channels of each
+interval's levels (valid while fewer than half the channels are busy), then
+the median of the last ``floor_history`` of those; with fewer channels, the
+10th percentile of each channel's own last 200 levels. A channel is *above*
+when its level is at least ``threshold`` dB over the floor and *below* when it
+is under ``threshold - hysteresis``; it turns on after ``min_duration`` of
+consecutive *above* intervals (the event is dated at the first of them) and
+off after ``min_duration`` of consecutive *below* intervals.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass
+class Event:
+    time: float        # seconds from the stream's first row
+    column: int
+    level_db: float    # mean level over the intervals that decided the event (dBFS)
+    kind: str          # "on" or "off"
+
+
+def _db(power):
+    return 10 * np.log10(np.maximum(power, 1e-30))
+
+
+class ActivityDetector:
+    def __init__(self, columns, rate, *, interval=0.05, threshold=10.0, hysteresis=4.0, min_duration=0.1,
+                 floor_history=20, keep_levels=False):
+        if interval <= 0 or threshold <= 0 or hysteresis < 0 or hysteresis >= threshold:
+            raise ValueError("need interval > 0, threshold > 0 and 0 <= hysteresis < threshold!")
+        self.columns = int(columns)
+        self.rate = float(rate)
+        self.rows_per_interval = max(1, int(round(interval * rate)))
+        self.interval = self.rows_per_interval / self.rate
+        self.threshold = threshold
+        self.hysteresis = hysteresis
+        self.min_intervals = max(1, int(round(min_duration / self.interval)))
+        self.floor_values = deque(maxlen=floor_history)
+        self.own_history = [deque(maxlen=200) for _ in range(self.columns)]
+        self.partial = np.zeros(self.columns)
+        self.partial_rows = 0
+        self.intervals = 0
+        self.on = np.zeros(self.columns, dtype=bool)
+        self.run = np.zeros(self.columns, dtype=np.int64)        # consecutive intervals against the state
+        self.run_power = np.zeros(self.columns)
+        self.on_power = np.zeros(self.columns)                    # power summed over the current on period
+        self.on_count = np.zeros(self.columns, dtype=np.int64)
+        self.on_intervals = np.zeros(self.columns, dtype=np.int64)
+        self.all_on_power = np.zeros(self.columns)                # power summed over every on period
+        self.peak = np.full(self.columns, -np.inf)
+        self.power_sum = np.zeros(self.columns)
+        self.floor_db = np.nan
+        self.keep_levels = keep_levels
+        self.levels = []          # per interval: level_db row (when keep_levels)
+        self.states = []          # per interval: on flags (when keep_levels)
+
+    def process(self, rows):
+        """Take rows ``(n, C)`` (or ``(n,)`` for one channel); return the events they complete."""
+        rows = np.asarray(rows)
+        if rows.ndim == 1:
+            rows = rows[:, None]
+        power = np.abs(rows) ** 2
+        events = []
+        start = 0
+        while start < len(power):
+            take = min(self.rows_per_interval - self.partial_rows, len(power) - start)
+            self.partial += power[start:start + take].sum(axis=0)
+            self.partial_rows += take
+            start += take
+            if self.partial_rows == self.rows_per_interval:
+                events.extend(self._interval(self.partial / self.rows_per_interval))
+                self.partial[:] = 0
+                self.partial_rows = 0
+        return events
+
+    def _floor(self, level):
+        if self.columns >= 4:
+            self.floor_values.append(float(np.median(level)))
+            return np.full(self.columns, float(np.median(self.floor_values)))
+        for c in range(self.columns):
+            self.own_history[c].append(level[c])
+        return np.array([np.percentile(self.own_history[c], 10) for c in range(self.columns)])
+
+    def _interval(self, power):
+        level = _db(power)
+        floor = self._floor(level)
+        self.floor_db = float(np.median(floor))
+        t0 = self.intervals * self.interval
+        self.intervals += 1
+        self.peak = np.maximum(self.peak, level)
+        self.power_sum += power
+        above = level >= floor + self.threshold
+        below = level < floor + self.threshold - self.hysteresis
+        events = []
+        for c in range(self.columns):
+            if self.on[c]:
+                self.on_power[c] += power[c]
+                self.all_on_power[c] += power[c]
+                self.on_count[c] += 1
+                self.on_intervals[c] += 1
+            if below[c] if self.on[c] else above[c]:
+                if self.run[c] == 0:
+                    self.run_power[c] = 0.0
+                self.run[c] += 1
+                self.run_power[c] += power[c]
+            else:
+                self.run[c] = 0
+            if self.run[c] >= self.min_intervals:
+                start = t0 - (self.run[c] - 1) * self.interval
+                if self.on[c]:
+                    # the trailing quiet intervals were not part of the transmission
+                    self.on_power[c] -= self.run_power[c]
+                    self.all_on_power[c] -= self.run_power[c]
+                    self.on_count[c] -= self.run[c]
+                    self.on_intervals[c] -= self.run[c]
+                    events.append(Event(start, c, float(_db(self.on_power[c] / max(self.on_count[c], 1))), "off"))
+                else:
+                    events.append(Event(start, c, float(_db(self.run_power[c] / self.run[c])), "on"))
+                    self.on_power[c] = self.run_power[c]
+                    self.all_on_power[c] += self.run_power[c]
+                    self.on_count[c] = self.run[c]
+                    self.on_intervals[c] += self.run[c]
+                self.on[c] = not self.on[c]
+                self.run[c] = 0
+        if self.keep_levels:
+            self.levels.append(level)
+            self.states.append(self.on.copy())
+        return events
+
+    def finish(self):
+        """Close channels still on at the end with an "off" event dated at the end."""
+        end = self.intervals * self.interval
+        events = [Event(end, c, float(_db(self.on_power[c] / max(self.on_count[c], 1))), "off")
+                  for c in range(self.columns) if self.on[c]]
+        self.on[:] = False
+        return events
+
+    def summary(self):
+        """Per column: duty cycle (0..1), peak and mean level over the stream, and the mean level
+        while on (dBFS; NaN for a channel never on)."""
+        n = max(self.intervals, 1)
+        return [{"duty_cycle": float(self.on_intervals[c] / n), "peak_db": float(self.peak[c]),
+                 "mean_db": float(_db(self.power_sum[c] / n)),
+                 "on_level_db": float(_db(self.all_on_power[c] / self.on_intervals[c]))
+                 if self.on_intervals[c] else float("nan")} for c in range(self.columns)]

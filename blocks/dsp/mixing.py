@@ -1,0 +1,13 @@
+"""Frequency shifting in absolute time."""
+
+import numpy as np
+
+
+def shift_frequency(data, first_index, cycles_per_sample):
+    """``data * exp(2j pi f m)`` with ``m`` the absolute index of each sample and ``f`` in cycles per sample.
+
+    The phase is reduced modulo one cycle from the absolute index, so it is
+    exact across chunks and never drifts however long the stream runs.
+    """
+    m = first_index + np.arange(len(data))
+    return (data * np.exp(2j * np.pi * np.mod(m * cycles_per_sample, 1.0))).astype(np.complex64)

@@ -1,0 +1,230 @@
+"""Monitors: the channel activity log and the waterfall picture."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import numpy as np
+
+from .block import Block, BlockError, Param, Port
+from .dsp.activity import ActivityDetector
+from .units import format_frequency
+
+DETECTOR_PARAMS = (
+    Param("interval", "quantity", "power is measured over this interval", default=0.05, unit="s", minimum=1e-6),
+    Param("threshold", "quantity", "a channel is active this far above the noise floor", default=10.0,
+          unit="dB", minimum=0.1),
+    Param("hysteresis", "quantity", "it turns off only this much below the threshold", default=4.0,
+          unit="dB", minimum=0.0),
+    Param("min_duration", "quantity", "a change must last this long to count", default=0.1, unit="s",
+          minimum=0.0),
+)
+
+
+def _detector(params, stream, keep_levels=False):
+    try:
+        return ActivityDetector(stream.width, stream.sample_rate, interval=params["interval"],
+                                threshold=params["threshold"], hysteresis=params["hysteresis"],
+                                min_duration=params["min_duration"], keep_levels=keep_levels)
+    except ValueError:
+        raise BlockError(f"hysteresis = {params['hysteresis']:g} dB must be less than threshold = "
+                         f"{params['threshold']:g} dB", param="hysteresis") from None
+
+
+def _channel_labels(stream):
+    if stream.kind == "channels":
+        return list(stream.channels), list(stream.channel_frequencies)
+    channel = stream.channels[0] if stream.channels else 0
+    return [channel], [stream.centre_frequency]
+
+
+class Activity(Block):
+    type_name = "activity"
+    summary = "Log when each channel is busy: power per interval, noise floor, on/off events, duty cycle."
+    parameters = DETECTOR_PARAMS + (
+        Param("path", "output-path", "events file: .csv or .jsonl (time_s, channel, frequency_hz, "
+              "level_dbfs, event)", default="activity.csv"),
+    )
+    inputs = (Port("channels", "any", "channels from a channelizer (or one channel)"),)
+
+    def output_streams(self, inputs):
+        if not self.params["path"].endswith((".csv", ".jsonl")):
+            raise BlockError(f"path = \"{self.params['path']}\" must end in .csv or .jsonl", param="path")
+        _detector(self.params, inputs["channels"])
+        return {}
+
+    def start(self, inputs):
+        stream = inputs["channels"]
+        self.detector = _detector(self.params, stream)
+        self.channels, self.frequencies = _channel_labels(stream)
+        self.path = self.context.output_path(self.params["path"])
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.file = open(self.path, "w", newline="")
+        self.jsonl = self.path.suffix == ".jsonl"
+        if not self.jsonl:
+            self.writer = csv.writer(self.file)
+            self.writer.writerow(["time_s", "channel", "frequency_hz", "level_dbfs", "event"])
+        self.events = 0
+
+    def _write(self, events):
+        for e in events:
+            row = {"time_s": round(e.time, 6), "channel": self.channels[e.column],
+                   "frequency_hz": round(self.frequencies[e.column], 3), "level_dbfs": round(e.level_db, 2),
+                   "event": e.kind}
+            if self.jsonl:
+                self.file.write(json.dumps(row) + "\n")
+            else:
+                self.writer.writerow(row.values())
+            self.events += 1
+
+    def consume(self, port, chunk):
+        self._write(self.detector.process(chunk.data))
+        return {}
+
+    def finish(self):
+        self._write(self.detector.finish())
+        return {}
+
+    def close(self):
+        if getattr(self, "file", None):
+            self.file.close()
+
+    def report(self):
+        if not hasattr(self, "detector"):
+            return []
+        summary = self.detector.summary()
+        lines = [f"{self.events} events in {self.path}; noise floor {self.detector.floor_db:.1f} dBFS "
+                 f"per channel",
+                 f"{'channel':>7}  {'frequency':>14}  {'duty':>6}  {'peak dBFS':>9}  {'mean dBFS':>9}  {'on level':>8}"]
+        quiet = 0
+        for c, s in enumerate(summary):
+            if s["duty_cycle"] == 0:
+                quiet += 1
+                continue
+            lines.append(f"{self.channels[c]:>7}  {format_frequency(self.frequencies[c]):>14}  "
+                         f"{100 * s['duty_cycle']:>5.1f}%  {s['peak_db']:>9.1f}  {s['mean_db']:>9.1f}  "
+                         f"{s['on_level_db']:>8.1f}")
+        if quiet:
+            lines.append(f"{quiet} channel{'s' if quiet != 1 else ''} never active")
+        return lines
+
+
+class Waterfall(Block):
+    type_name = "waterfall"
+    summary = "Draw the band's spectrum over time as a PNG, with the channel grid and activity marked."
+    parameters = (
+        Param("path", "output-path", "the picture (PNG)", default="waterfall.png"),
+        Param("fft_size", "int", "frequency resolution: points per spectrum", default=1024, minimum=16,
+              maximum=1 << 16),
+        Param("rows", "int", "at most this many rows of time in the picture", default=400, minimum=10),
+        Param("title", "str", "title above the picture", default=""),
+    ) + DETECTOR_PARAMS
+    inputs = (Port("samples", "samples", "the wideband stream to draw"),
+              Port("channels", "channels", "the channelizer's output, to mark the grid and activity",
+                   required=False))
+
+    def output_streams(self, inputs):
+        try:
+            import matplotlib  # noqa: F401
+        except ImportError:
+            raise BlockError("the waterfall block needs matplotlib: pip install 'bandloom[plots]'") from None
+        if "channels" in inputs:
+            _detector(self.params, inputs["channels"])
+        return {}
+
+    def start(self, inputs):
+        self.stream = inputs["samples"]
+        self.channel_stream = inputs.get("channels")
+        self.detector = _detector(self.params, self.channel_stream, keep_levels=True) \
+            if self.channel_stream else None
+        n = self.params["fft_size"]
+        self.window = np.hanning(n).astype(np.float32)
+        self.pending = np.zeros(0, np.complex64)
+        self.segments_per_row = 1
+        self.rows = []
+        self.row_acc = np.zeros(n)
+        self.row_count = 0
+        self.total = 0
+
+    def _fold_rows(self):
+        # keep memory bounded: merge neighbouring rows and double the averaging
+        merged = [(a + b) / 2 for a, b in zip(self.rows[0::2], self.rows[1::2])]
+        self.rows = merged
+        self.segments_per_row *= 2
+
+    def consume(self, port, chunk):
+        if port == "channels":
+            self.detector.process(chunk.data)
+            return {}
+        n = self.params["fft_size"]
+        data = np.concatenate([self.pending, chunk.data]) if len(self.pending) else chunk.data
+        count = len(data) // n
+        if count:
+            segments = data[:count * n].reshape(count, n) * self.window
+            spectra = np.abs(np.fft.fftshift(np.fft.fft(segments, axis=1), axes=1)) ** 2
+            for spectrum in spectra:
+                self.row_acc += spectrum
+                self.row_count += 1
+                if self.row_count == self.segments_per_row:
+                    self.rows.append(self.row_acc / self.row_count)
+                    self.row_acc = np.zeros(n)
+                    self.row_count = 0
+                    if len(self.rows) >= 2 * self.params["rows"]:
+                        self._fold_rows()
+        self.pending = data[count * n:].copy()
+        self.total += chunk.count
+        return {}
+
+    def close(self):
+        if not getattr(self, "rows", None):
+            return
+        import matplotlib
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+        from matplotlib.patches import Rectangle
+
+        n = self.params["fft_size"]
+        rate, centre = self.stream.sample_rate, self.stream.centre_frequency
+        # normalise so a full-scale carrier reads 0 dBFS
+        power = np.array(self.rows) / (np.sum(self.window) ** 2)
+        level = 10 * np.log10(np.maximum(power, 1e-20))
+        duration = len(self.rows) * self.segments_per_row * n / rate
+        floor = np.percentile(level, 20)
+        fig, ax = plt.subplots(figsize=(11, 6.5), dpi=100)
+        lo, hi = (centre - rate / 2) / 1e6, (centre + rate / 2) / 1e6
+        image = ax.imshow(level, aspect="auto", origin="upper", extent=(lo, hi, duration, 0),
+                          vmin=floor - 5, vmax=max(level.max(), floor + 30), cmap="viridis", interpolation="nearest")
+        fig.colorbar(image, ax=ax, label="level per FFT bin (dBFS)")
+        cs = self.channel_stream
+        if cs is not None and self.detector is not None:
+            spacing = cs.channel_spacing
+            edges = sorted({round(f - spacing / 2, 3) for f in cs.channel_frequencies})
+            for edge in edges:
+                ax.axvline(edge / 1e6, color="white", alpha=0.25, linewidth=0.6)
+            states = np.array(self.detector.states) if self.detector.states else np.zeros((0, cs.width), bool)
+            step = self.detector.interval
+            for c, f in enumerate(cs.channel_frequencies):
+                on = states[:, c] if len(states) else []
+                start = None
+                for i, flag in enumerate(list(on) + [False]):
+                    if flag and start is None:
+                        start = i
+                    elif not flag and start is not None:
+                        ax.add_patch(Rectangle(((f - spacing / 2) / 1e6, start * step), spacing / 1e6,
+                                               (i - start) * step, fill=False, edgecolor="orange", linewidth=1.2))
+                        start = None
+        ax.set_xlim(lo, hi)
+        ax.set_xlabel("frequency (MHz)")
+        ax.set_ylabel("time (s)")
+        title = self.params["title"] or f"{self.context.name}: {format_frequency(centre)}, " \
+                                         f"{format_frequency(rate)} wide"
+        ax.set_title(title + ("\nchannel grid in white, detected activity in orange" if cs is not None else ""))
+        self.path = self.context.output_path(self.params["path"])
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        fig.tight_layout()
+        fig.savefig(self.path)
+        plt.close(fig)
+
+    def report(self):
+        return [f"drew {len(getattr(self, 'rows', []))} rows to {getattr(self, 'path', '?')}"]
