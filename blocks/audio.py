@@ -39,7 +39,7 @@ class Shift(Block):
 def rational_ratio(target, rate):
     """up/down with small terms such that rate * up / down == target, or BlockError."""
     ratio = Fraction(target / rate).limit_denominator(10000)
-    if abs(float(ratio) * rate - target) > 1e-6 * target or max(ratio.numerator, ratio.denominator) > 10000:
+    if abs(float(ratio) * rate - target) > 1e-12 * target:
         raise BlockError(f"cannot reach {format_frequency(target)} exactly from {format_frequency(rate)} with a ratio "
                          f"of whole numbers up to 10000", param="rate")
     return ratio.numerator, ratio.denominator
@@ -110,8 +110,8 @@ class FMDemod(Block):
 class AMDemod(Block):
     type_name = "am-demod"
     summary = "Envelope-demodulate a channel to audio (1.0 = 100 % modulation)."
-    parameters = (Param("dc_cutoff", "quantity", "the carrier is removed below this frequency", default=50.0,
-                        unit="Hz", minimum=0.1),)
+    parameters = (Param("dc_cutoff", "quantity", "the carrier level is followed below this frequency",
+                        default=10.0, unit="Hz", minimum=0.1),)
     inputs = (Port("samples", "samples", "one channel of IQ, carrier at 0 Hz"),)
     outputs = (Port("audio", "samples", "audio, float32, at the channel rate", sample_types=("f32",)),)
 

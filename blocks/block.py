@@ -236,6 +236,8 @@ class Block:
     inputs: tuple = ()
     outputs: tuple = ()
     is_source = False
+    uses_stdin = False     # the one block of a flow that reads the run's standard input
+    uses_stdout = False    # the one block of a flow that writes data to the run's standard output
 
     def __init__(self, params, context):
         self.params = params
@@ -272,6 +274,11 @@ class Block:
     def report(self):
         """Lines for the run summary (for example a measured error); default none."""
         return []
+
+    def end_index(self):
+        """Sources: the absolute index after the last row of the stream, if rows were lost after
+        the last chunk produced (a live source dropping its final buffers); None otherwise."""
+        return None
 
     def stop_requested(self):
         """Sources: the run is being stopped; end the stream at the next produce()."""

@@ -73,12 +73,16 @@ class _LiveSource(Block):
             self.received += len(data)
             return {"samples": [Chunk(data, index)]}
 
+    def end_index(self):
+        return self.next_index
+
     def report(self):
         return [f"took {getattr(self, 'received', 0)} samples; dropped {getattr(self, 'dropped_samples', 0)} "
                 f"samples in {getattr(self, 'dropped_buffers', 0)} buffers because downstream was busy"]
 
 
 class StdinReader(_LiveSource):
+    uses_stdin = True
     type_name = "stdin-reader"
     summary = "Read raw IQ from standard input, as a receiver program pipes it (never stalls the pipe)."
     parameters = LIVE_PARAMS + (
@@ -109,8 +113,8 @@ class UDPReader(_LiveSource):
         Param("address", "str", "local address to listen on", default="127.0.0.1"),
         Param("port", "int", "UDP port", minimum=1, maximum=65535),
         Param("header_bytes", "int", "bytes to skip at the start of each datagram", default=0, minimum=0),
-        Param("idle_timeout", "quantity", "end the stream after this long without datagrams (0 = never)",
-              default=0.0, unit="s", minimum=0.0),
+        Param("idle_timeout", "quantity", "end the stream after this long without datagrams, counted from "
+              "the first one (0 = never)", default=0.0, unit="s", minimum=0.0),
     )
 
     def start(self, inputs):
@@ -128,13 +132,13 @@ class UDPReader(_LiveSource):
     def _read_loop(self):
         skip = self.params["header_bytes"]
         idle = self.params["idle_timeout"]
-        last = time.monotonic()
+        last = None
         try:
             while not self.stopping:
                 try:
                     datagram = self.sock.recv(65536)
                 except socket.timeout:
-                    if idle and time.monotonic() - last > idle:
+                    if idle and last is not None and time.monotonic() - last > idle:
                         break
                     continue
                 last = time.monotonic()
@@ -148,6 +152,7 @@ class UDPReader(_LiveSource):
 
 
 class StdoutWriter(Block):
+    uses_stdout = True
     type_name = "stdout-writer"
     summary = "Write one stream's raw samples to standard output, to pipe a channel into another program."
     parameters = (Param("format", "choice", "cf32 or ci16 for IQ; f32 or s16 for audio", default="native",

@@ -191,6 +191,7 @@ class _Decl:
     cls: type
     params: dict
     per_channel: dict | None
+    ok: bool = True                                   # declared without problems
     feeds: list = field(default_factory=list)         # raw links into this block: (index, port)
 
 
@@ -295,6 +296,13 @@ class _Checker:
         return meta, decls, links
 
     def declaration(self, name, table):
+        before = len(self.problems)
+        decl = self._declaration(name, table)
+        if decl is not None:
+            decl.ok = len(self.problems) == before
+        return decl
+
+    def _declaration(self, name, table):
         if not NAME_PATTERN.match(name):
             self.problem(("blocks", name), "block names start with a letter and use letters, digits, '-' and '_'")
             return None
@@ -628,7 +636,10 @@ class _Checker:
 
         for name in order:
             decl = decls[name]
-            specs = []                               # (instance name, placeholders, {port: (link kwargs)})
+            specs = []
+            if not decl.ok:
+                made[name] = []          # its own problems are reported; its outputs are unknown
+                continue                               # (instance name, placeholders, {port: (link kwargs)})
             if decl.per_channel:
                 ref = _parse_ref(decl.per_channel["from"])
                 source_decl = decls[ref[0]]
@@ -717,9 +728,9 @@ class _Checker:
                     inst.input_streams[port_name] = w["stream"]
                     instances[w["source"]].outputs.setdefault(w["source_port"], []).append(link)
                     expanded.append(link)
-                if not good or len(inst.input_streams) < len([p for p in decl.cls.inputs if p.name in
-                                                             {x[1] for x in decl.feeds}]):
-                    continue
+                unfed = [p.name for p in decl.cls.inputs if p.required and p.name not in inst.input_streams]
+                if not good or unfed:
+                    continue             # reported already (unconnected, or fed by a broken link)
                 context = BlockContext(inst_name, self.path, self.output_dir, placeholders)
                 try:
                     block = decl.cls(dict(decl.params), context)
@@ -728,7 +739,9 @@ class _Checker:
                     if error.param:
                         self.problem(("blocks", name, error.param), str(error))
                     elif error.port and error.port in inst.inputs:
-                        self.problem(tuple(self._path(inst.inputs[error.port].where)), f"{inst_name}.{error.port}: {error}")
+                        where = self._path(inst.inputs[error.port].where)
+                        where += ["to"] if where[0] == "links" else []
+                        self.problem(tuple(where), f"{inst_name}.{error.port}: {error}")
                     else:
                         self.problem(("blocks", name), str(error))
                     continue
@@ -808,8 +821,15 @@ def load_flow(path, registry, *, output_dir=None):
     order = checker.order(decls, links)
     checker.inputs(decls, links)
     instances, expanded = ({}, [])
-    if order is not None and not checker.problems:
+    if order is not None:
+        # streams are worked out for every block that was declared well, so that their
+        # problems are reported along with the others
         instances, expanded = checker.build(decls, links, order)
+    for attribute, what in (("uses_stdin", "read standard input"), ("uses_stdout", "write standard output")):
+        users = [i.name for i in instances.values() if getattr(i.cls, attribute)]
+        if len(users) > 1:
+            checker.problem(("blocks", users[1].split("[")[0]), f"{len(users)} blocks ({', '.join(users)}) "
+                            f"{what}; a run has one, so only one block may")
     if checker.problems:
         raise FlowErrors(checker.problems)
     return Flow(path, meta.get("name", path.stem), meta.get("description", ""), instances, expanded)

@@ -84,6 +84,7 @@ class Outlet:
         self.dropped_rows = 0
         self.dropped_messages = 0
         self.discontinuities = 0
+        self.missing_rows = 0
         self.blocked_seconds = 0.0
         s = self.stream
         self._fixed = dict(stream=spec["label"], sample_type=s.sample_type, sample_rate=s.sample_rate,
@@ -130,17 +131,25 @@ class Outlet:
         self.messages += 1
         self.rows += count
         self.discontinuities += bool(flags)
+        self.missing_rows += gap
         self.next_index = chunk.first_index + count
 
-    def end(self):
-        header = wire.encode_header(seq=self.seq, first_index=self.next_index, count=0, flags=wire.FLAG_END,
-                                    **self._fixed)
+    def end(self, final_index=None):
+        """Send end of stream; ``final_index`` (sources) counts rows lost after the last message."""
+        gap = max(0, (final_index or 0) - self.next_index)
+        flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap else 0)
+        header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
+                                    dropped=gap, **self._fixed)
         self._send([header, b""], droppable=False)
+        self.missing_rows += gap
+        self.discontinuities += bool(gap)
+        self.next_index += gap
 
     def stats(self):
         return {"rows": self.rows, "messages": self.messages, "seq": self.seq,
                 "dropped_rows": self.dropped_rows, "dropped_messages": self.dropped_messages,
-                "discontinuities": self.discontinuities, "blocked_seconds": round(self.blocked_seconds, 3)}
+                "discontinuities": self.discontinuities, "missing_rows": self.missing_rows,
+                "next_index": self.next_index, "blocked_seconds": round(self.blocked_seconds, 3)}
 
     def close(self, *, discard=False):
         """Close; queued messages are still delivered unless ``discard`` (abort, error)."""
@@ -175,6 +184,9 @@ class Inlet:
         header = wire.decode_header(frames[0].buffer)
         if header["flags"] & wire.FLAG_END:
             self.ended = True
+            if header["dropped"]:
+                self.gaps += 1
+                self.missing += header["dropped"]
             return None
         if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "

@@ -103,11 +103,17 @@ class Supervisor:
         signal.signal(signal.SIGTERM, request_stop)
         started = time.monotonic()
         try:
-            for inst, spec in self.specs(folder, f"ipc://{folder}/control", f"ipc://{folder}/stats"):
-                process = subprocess.Popen([sys.executable, "-m", "bandloom.runtime.worker"],
-                                           stdin=subprocess.PIPE, stdout=None, stderr=None)
-                process.stdin.write(json.dumps(spec).encode())
-                process.stdin.close()
+            for number, (inst, spec) in enumerate(self.specs(folder, f"ipc://{folder}/control",
+                                                             f"ipc://{folder}/stats")):
+                spec_path = os.path.join(folder, f"spec-{number}.json")
+                with open(spec_path, "w") as handle:
+                    json.dump(spec, handle)
+                # Only the block that reads standard input gets it, and only the one that
+                # writes data to standard output gets that; the rest print to stderr.
+                process = subprocess.Popen(
+                    [sys.executable, "-m", "bandloom.runtime.worker", spec_path],
+                    stdin=None if inst.cls.uses_stdin else subprocess.DEVNULL,
+                    stdout=None if inst.cls.uses_stdout else sys.stderr.fileno())
                 self.blocks[inst.name] = BlockState(inst.name, process, pid=process.pid)
             self.watch(control, stats)
         finally:
@@ -258,6 +264,7 @@ class Supervisor:
                 "received_messages": recv.get("messages", 0) if link.target else None,
                 "dropped_samples": sent.get("dropped_rows", 0), "dropped_messages": sent.get("dropped_messages", 0),
                 "discontinuities": sent.get("discontinuities", 0),
+                "missing_samples": sent.get("missing_rows", 0), "last_index": sent.get("next_index", 0),
             })
         blocks = {name: {"pid": s.pid, "state": s.state, "exit": _describe_exit(s.process.returncode),
                          "reason": s.exit_reason, "report": s.report, "samples_in": s.last.get("rows_in", 0),
@@ -275,10 +282,12 @@ class Supervisor:
             print(f"bandloom: block {name!r} (pid {s.pid}) died ({_describe_exit(s.process.returncode)}){reason}",
                   file=out)
         width = max([len(x["link"]) for x in summary["links"]] + [4])
-        print(f"  {'link':<{width}}  {'samples':>12}  {'messages':>9}  {'dropped':>9}  {'gaps':>5}", file=out)
+        print(f"  {'link':<{width}}  {'samples':>12}  {'messages':>9}  {'dropped':>9}  {'missing':>9}  "
+              f"{'gaps':>5}", file=out)
         for x in summary["links"]:
             print(f"  {x['link']:<{width}}  {x['sent_samples']:>12}  {x['sent_messages']:>9}  "
-                  f"{x['dropped_samples']:>9}  {x['discontinuities']:>5}", file=out)
+                  f"{x['dropped_samples']:>9}  {x['missing_samples']:>9}  {x['discontinuities']:>5}", file=out)
+        print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged)", file=out)
         for name, b in summary["blocks"].items():
             for line in b["report"]:
                 print(f"  {name}: {line}", file=out)

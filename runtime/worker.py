@@ -1,4 +1,4 @@
-"""One block's process: ``python -m bandloom.runtime.worker`` reads its spec (JSON) on stdin.
+"""One block's process: ``python -m bandloom.runtime.worker SPEC.json``.
 
 The supervisor starts one worker per block instance. A worker builds its
 block, binds its inputs, connects its outputs, then moves chunks until every
@@ -172,9 +172,10 @@ class Worker:
         else:
             self.run_consumer()
         if not self.abort:
+            final = self.block.end_index() if self.block.is_source else None
             for outs in self.outlets.values():
                 for outlet in outs:
-                    outlet.end()
+                    outlet.end(final)
 
     def close(self, event, **extra):
         report = []
@@ -202,7 +203,7 @@ def main():
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     reuse_chunk_buffers()
-    spec = json.loads(sys.stdin.read())
+    spec = json.loads(Path(sys.argv[1]).read_text())
     worker = Worker(spec)
     try:
         worker.run()
