@@ -94,7 +94,7 @@ class Param:
         if self.kind == "quantity":
             return f"number in {self.unit}"
         if self.kind == "choice":
-            return "one of " + ", ".join(repr(c) for c in self.choices)
+            return "one of " + ", ".join(toml_repr(c) for c in self.choices)
         return {"int": "whole number", "float": "number", "str": "text", "bool": "true or false",
                 "input-path": "path of an existing file", "output-path": "path of a file to write",
                 "list": "list", "channels": "channel selection"}.get(self.kind, self.kind)

@@ -7,7 +7,7 @@ import shutil
 import sys
 from pathlib import Path
 
-from bandloom.blocks.block import REQUIRED
+from bandloom.blocks.block import REQUIRED, toml_repr
 from bandloom.blocks.units import format_frequency
 
 from ._table import render_rows
@@ -88,6 +88,8 @@ def run_run(args, out, log=None):
 
 def add_blocks_arguments(parser):
     parser.add_argument("type", nargs="?", help="show one block type's parameters and ports")
+    parser.add_argument("--markdown", action="store_true", help="print the reference of every block type as "
+                        "Markdown (docs/blocks.md is made this way)")
 
 
 def _default(param):
@@ -95,15 +97,40 @@ def _default(param):
         return "required"
     if param.default is None:
         return "(see text)"
-    if isinstance(param.default, bool):
-        return "true" if param.default else "false"
-    return repr(param.default) if isinstance(param.default, str) else f"{param.default:g}" \
-        if isinstance(param.default, float) else str(param.default)
+    if isinstance(param.default, float):
+        return f"{param.default:g}"
+    return toml_repr(param.default)
+
+
+def blocks_markdown(registry, names):
+    lines = ["# Block reference", "",
+             "Made by `bandloom blocks --markdown`; do not edit by hand. Parameters with units accept "
+             "\"2.4 MHz\", \"25 kHz\", \"-30 dBFS\", \"1.5 s\" or a plain number in the base unit.", ""]
+    for name in names:
+        cls = registry.types[name]
+        lines += [f"## {name}", "", cls.summary, ""]
+        if cls.parameters:
+            lines += ["| parameter | type | default | meaning |", "|---|---|---|---|"]
+            for p in cls.parameters:
+                kind = p.describe_type().replace("|", "\\|")
+                lines.append(f"| `{p.name}` | {kind} | {_default(p)} | {p.doc} |")
+            lines.append("")
+        for title, ports in (("Inputs", cls.inputs), ("Outputs", cls.outputs)):
+            if ports:
+                lines.append(f"{title}: " + "; ".join(
+                    f"`{port.name}` ({port.kind}, {'/'.join(port.sample_types)}"
+                    f"{'' if port.required else ', optional'}) {port.doc}" for port in ports) + ".")
+                lines.append("")
+    return "\n".join(lines)
 
 
 def run_blocks(args, out, log=None):
     log = log or sys.stderr
     registry = _registry(log)
+    if args.markdown:
+        own = [n for n in registry.names() if registry.origins[n] == "bandloom"]
+        out.write(blocks_markdown(registry, own) + "\n")
+        return 0
     if not args.type:
         rows = [[name, registry.origins[name], registry.types[name].summary] for name in registry.names()]
         out.write(render_rows(["type", "from", "what it does"], rows) + "\n")

@@ -52,3 +52,10 @@ def test_good_flow_checks_and_describes_its_streams(tmp_path, monkeypatch, capsy
     out = capsys.readouterr().out
     assert "ok.toml: ok: 4 block processes, 3 links" in out
     assert "split.channels: 8 channels at 600.0 kHz each, spaced 300.0 kHz" in out
+
+
+def test_block_reference_is_up_to_date(capsys):
+    """docs/blocks.md is what 'bandloom blocks --markdown' prints for bandloom's own blocks."""
+    assert main(["blocks", "--markdown"]) == 0
+    reference = Path(__file__).parent.parent / "docs" / "blocks.md"
+    assert capsys.readouterr().out == reference.read_text()

@@ -247,3 +247,79 @@ def test_dead_block_is_named_and_run_fails(tmp_path, recording):
     assert f"block '{dead[0]}' (pid {victim}) died (killed by SIGKILL)" in stderr
     assert report["outcome"] == "failed"
     assert "Traceback" not in stderr
+
+
+PACED = """
+[blocks.band]
+type = "scenario"
+sample_rate = "200 kHz"
+duration = "60 s"
+chunk_size = 10000
+pace = true
+transmitters = [{ kind = "cw", frequency = "20 kHz", level = "-20 dBFS" }]
+
+[blocks.split]
+type = "channelizer"
+channels = 8
+
+[blocks.keep]
+type = "iq-writer"
+path = "ch{channel}.cf32"
+per_channel = { from = "split.channels", select = [1, 2] }
+
+[[links]]
+from = "band.samples"
+to = "split.samples"
+"""
+
+
+def test_ctrl_c_stops_cleanly_and_says_interrupted(tmp_path):
+    """SIGINT to the run: sources end their streams, writers flush and close, exit status is the interrupt's."""
+    import json
+    import signal
+    flow = write_flow(tmp_path, PACED)
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
+                               "--out", str(tmp_path / "out"), "--report", str(tmp_path / "r.json")],
+                              stderr=subprocess.PIPE, text=True)
+    time.sleep(4.0)
+    runner.send_signal(signal.SIGINT)
+    _, stderr = runner.communicate(timeout=60)
+    assert runner.returncode == -signal.SIGINT, stderr
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["outcome"] == "interrupted"
+    assert all(b["state"] == "done" for b in report["blocks"].values())
+    sent = {x["link"]: x["sent_samples"] for x in report["links"]}
+    for k in (1, 2):
+        data = np.fromfile(tmp_path / "out" / f"ch{k}.cf32", np.complex64)
+        assert 0 < len(data) == sent[f"split.channels[{k}] -> keep[{k}].samples"]
+        assert (tmp_path / "out" / f"ch{k}.sigmf-meta").exists()
+    assert "Traceback" not in stderr and "KeyboardInterrupt" not in stderr
+
+
+def test_status_display_only_on_a_terminal(tmp_path):
+    """With stderr on a terminal the run shows a per-block status table; --quiet silences it."""
+    import pty
+    flow = write_flow(tmp_path, PACED.replace('duration = "60 s"', 'duration = "2 s"'))
+
+    def run(*extra):
+        leader, follower = pty.openpty()
+        runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow),
+                                   "--out", str(tmp_path / "out"), *extra], stderr=follower, stdout=subprocess.DEVNULL)
+        os.close(follower)
+        chunks = []
+        while True:
+            try:
+                data = os.read(leader, 65536)
+            except OSError:
+                break
+            if not data:
+                break
+            chunks.append(data)
+        runner.wait(timeout=60)
+        os.close(leader)
+        return b"".join(chunks).decode(errors="replace")
+
+    shown = run()
+    assert "block" in shown and "rate/s" in shown and "queue" in shown and "keep[1]" in shown
+    quiet = run("--quiet")
+    assert "rate/s" not in quiet
