@@ -15,7 +15,7 @@ import sys
 
 from types import SimpleNamespace
 
-from . import bench_command, design_command, flow_commands
+from . import bench_command, design_command, flow_commands, verify_commands
 
 COMMANDS = {
     "run": (SimpleNamespace(add_arguments=flow_commands.add_run_arguments, run=flow_commands.run_run),
@@ -25,6 +25,12 @@ COMMANDS = {
     "blocks": (SimpleNamespace(add_arguments=flow_commands.add_blocks_arguments, run=flow_commands.run_blocks),
                "list block types, or show one type's parameters and ports"),
     "design": (design_command, "design a matched analysis/synthesis bank and print its figures"),
+    "roundtrip": (SimpleNamespace(add_arguments=verify_commands.add_roundtrip_arguments,
+                                  run=verify_commands.run_roundtrip),
+                  "run test signals through analysis and synthesis and report the reconstruction"),
+    "channel-quality": (SimpleNamespace(add_arguments=verify_commands.add_quality_arguments,
+                                        run=verify_commands.run_quality),
+                        "measure a channelizer's channels with tones and compare with its taps' figures"),
     "bench": (bench_command, "measure bank throughput against a bare FFT in the same run"),
     "keys": (SimpleNamespace(add_arguments=flow_commands.add_keys_arguments, run=flow_commands.run_keys),
              "make CURVE key pairs for a link that crosses machines"),

@@ -13,8 +13,9 @@ from bandloom.blocks.dsp.design import SHAPES
 from ._table import render_pairs
 
 
-def add_arguments(parser):
-    parser.add_argument("--channels", type=int, required=True, help="number of channels M")
+def add_design_arguments(parser, *, required=True):
+    """The design knobs, shared by design, roundtrip and channel-quality."""
+    parser.add_argument("--channels", type=int, required=required, help="number of channels M")
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--oversample", type=int, help="oversampling M/D (default 2)")
     group.add_argument("--decimation", type=int, help="decimation D (divides M)")
@@ -25,7 +26,12 @@ def add_arguments(parser):
     parser.add_argument("--stopband-db", type=float, help="attenuation the Kaiser window is designed for, dB")
     parser.add_argument("--window", default="kaiser", help="window name scipy.signal.get_window knows "
                         "(default kaiser, set by --stopband-db)")
+
+
+def add_arguments(parser):
+    add_design_arguments(parser)
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
+    parser.add_argument("--plot", metavar="FILE", help="draw the response with the channel grid and figures (PNG)")
     parser.add_argument("--taps", metavar="FILE", help="save the analysis taps (.npy binary, else text)")
     parser.add_argument("--synthesis-taps", metavar="FILE", help="save the synthesis taps (.npy binary, else text)")
 
@@ -75,6 +81,9 @@ def run(args, out):
         _save_taps(args.taps, design.analysis_taps, f"bandloom analysis taps: {design!r}")
     if args.synthesis_taps:
         _save_taps(args.synthesis_taps, design.synthesis_taps, f"bandloom synthesis taps: {design!r}")
+    if args.plot:
+        from .plots import design_picture
+        design_picture(design, args.plot)
     if args.json:
         out.write(json.dumps(design.figures(), indent=2) + "\n")
     else:

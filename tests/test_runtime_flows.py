@@ -206,49 +206,6 @@ def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording
     assert all(h["first_index"] == sum(x["count"] for x in headers[:i]) for i, h in enumerate(headers))
 
 
-def test_dead_block_is_named_and_run_fails(tmp_path, recording):
-    """A block process that dies is reported by name with its exit reason; the rest stop; exit non-zero."""
-    flow = write_flow(tmp_path, SOURCE.replace("chunk_size = 7000", "chunk_size = 1000\npace = true") + """
-        [blocks.split]
-        type = "channelizer"
-        channels = 16
-
-        [blocks.sink]
-        type = "discard"
-
-        [[links]]
-        from = "source.samples"
-        to = "split.samples"
-
-        [[links]]
-        from = "split.channels"
-        to = "sink.samples"
-    """)
-    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow),
-                               "--out", str(tmp_path / "out"), "--report", str(tmp_path / "r.json")],
-                              stderr=subprocess.PIPE, text=True)
-    import json
-    victim = None
-    deadline = time.monotonic() + 60
-    while victim is None and time.monotonic() < deadline:
-        time.sleep(0.3)
-        out = subprocess.run(["pgrep", "-P", str(runner.pid), "-f", "bandloom.runtime.worker"],
-                             capture_output=True, text=True).stdout.split()
-        if len(out) == 3:
-            victim = int(out[1])
-    assert victim is not None
-    time.sleep(1.0)
-    os.kill(victim, 9)
-    _, stderr = runner.communicate(timeout=60)
-    assert runner.returncode == 1
-    report = json.loads((tmp_path / "r.json").read_text())
-    dead = [name for name, b in report["blocks"].items() if b["pid"] == victim]
-    assert len(dead) == 1
-    assert f"block '{dead[0]}' (pid {victim}) died (killed by SIGKILL)" in stderr
-    assert report["outcome"] == "failed"
-    assert "Traceback" not in stderr
-
-
 PACED = """
 [blocks.band]
 type = "scenario"
@@ -323,3 +280,31 @@ def test_status_display_only_on_a_terminal(tmp_path):
     assert "block" in shown and "rate/s" in shown and "queue" in shown and "keep[1]" in shown
     quiet = run("--quiet")
     assert "rate/s" not in quiet
+
+
+def test_dead_block_is_named_and_run_fails(tmp_path):
+    """A block process that dies is reported by name with its exit reason; the rest stop; exit non-zero."""
+    import json
+    flow = write_flow(tmp_path, PACED)
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow),
+                               "--out", str(tmp_path / "out"), "--report", str(tmp_path / "r.json")],
+                              stderr=subprocess.PIPE, text=True)
+    victim = None
+    deadline = time.monotonic() + 60
+    while victim is None and time.monotonic() < deadline:
+        time.sleep(0.3)
+        out = subprocess.run(["pgrep", "-P", str(runner.pid), "-f", "bandloom.runtime.worker"],
+                             capture_output=True, text=True).stdout.split()
+        if len(out) == 4:
+            victim = sorted(int(p) for p in out)[1]          # started second: the channelizer
+    assert victim is not None
+    time.sleep(2.0)
+    os.kill(victim, 9)
+    _, stderr = runner.communicate(timeout=60)
+    assert runner.returncode == 1
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["blocks"]["split"]["pid"] == victim
+    assert f"block 'split' (pid {victim}) died (killed by SIGKILL)" in stderr
+    assert report["outcome"] == "failed"
+    assert {b["state"] for name, b in report["blocks"].items() if name != "split"} <= {"done", "aborted"}
+    assert "Traceback" not in stderr

@@ -154,7 +154,7 @@ def test_stdin_source_faster_than_the_flow_counts_every_drop(tmp_path, rng):
     flow = tmp_path / "live.toml"
     flow.write_text('[blocks.live]\ntype = "stdin-reader"\nsample_rate = "8 MHz"\nqueue = 2\nbuffer_size = 20000\n'
                     '[blocks.split]\ntype = "channelizer"\nchannels = 1024\n'
-                    '[blocks.sink]\ntype = "discard"\n'
+                    '[blocks.sink]\ntype = "discard"\nrate_limit = "2 kHz"\n'
                     '[[links]]\nfrom = "live.samples"\nto = "split.samples"\nqueue = 2\n'
                     '[[links]]\nfrom = "split.channels"\nto = "sink.samples"\nqueue = 2\n')
     report_path = tmp_path / "report.json"

@@ -1,0 +1,239 @@
+"""``bandloom roundtrip`` and ``bandloom channel-quality``: measure a bank with test signals.
+
+Both take a design (the same knobs as ``bandloom design``) or a flow file
+(``--flow``), whose channelizer (and the synthesis it feeds, if any) is
+measured. ``roundtrip --flow`` runs the test signals through real block
+processes: a flow of its own is made with the flow's channelizer and
+synthesis settings, an IQ reader per test signal and an IQ writer per output.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from bandloom.blocks.block import toml_repr
+from bandloom.blocks.dsp.verification import SIGNALS, analyse_round_trip, measure_channel_response, \
+    round_trip_in_process, probe_signal
+
+from .design_command import add_design_arguments, design_from_args
+from .flowfile import FlowErrors, load_flow
+from .plugins import load_registry
+
+
+def _common(parser):
+    add_design_arguments(parser, required=False)
+    parser.add_argument("--flow", help="measure this flow's channelizer (and synthesis) instead of a design")
+    parser.add_argument("--json", action="store_true", help="print the figures as JSON")
+    parser.add_argument("--plot", metavar="FILE", help="draw the figures (PNG)")
+
+
+def add_roundtrip_arguments(parser):
+    _common(parser)
+    parser.add_argument("--threshold", type=float, default=-100.0,
+                        help="PASS when every signal's error is at or below this, dB (default -100)")
+    parser.add_argument("--signals", default=",".join(SIGNALS), help=f"comma list of {', '.join(SIGNALS)}")
+    parser.add_argument("--frames", type=int, default=64, help="length of each test signal in frames of M")
+
+
+def add_quality_arguments(parser):
+    _common(parser)
+    parser.add_argument("--steps", type=int, default=32, help="tones per channel spacing")
+
+
+class _FlowBank:
+    """What a flow's channelizer is: its parameters, input rate and centre, and its design."""
+
+    def __init__(self, flow_path):
+        from bandloom.blocks._bank_params import DESIGN_KEYS, make_design
+        try:
+            flow = load_flow(flow_path, load_registry())
+        except FlowErrors as errors:
+            raise ValueError("the flow has problems (run 'bandloom check'):\n" + str(errors)) from None
+        splits = [i for i in flow.instances.values() if i.type_name == "channelizer"]
+        if len(splits) != 1:
+            raise ValueError(f"{flow_path} has {len(splits)} channelizer blocks; --flow needs exactly one")
+        self.split = splits[0]
+        self.merge = next((i for i in flow.instances.values() if i.type_name == "synthesis"
+                           and i.inputs.get("channels") and i.inputs["channels"].source == self.split.name), None)
+        wide = self.split.input_streams["samples"]
+        self.rate, self.centre = wide.sample_rate, wide.centre_frequency
+        self.design = make_design(self.split.params["channels"], self.split.params["oversample"],
+                                  {k: self.split.params.get(k) for k in DESIGN_KEYS})
+        self.label = f"{flow_path}: block {self.split.name!r}"
+
+
+def _target(args):
+    if args.flow:
+        return _FlowBank(args.flow)
+    if args.channels is None:
+        raise ValueError("give --channels (with design knobs) or --flow FLOW")
+    return None
+
+
+def _params_toml(params):
+    return "".join(f"{k} = {toml_repr(v)}\n" for k, v in params.items() if v is not None)
+
+
+def round_trip_through_processes(target, signals, frames, folder):
+    """Run the signals through real channelizer and synthesis processes; list of SignalResult."""
+    from .supervisor import Supervisor
+
+    design = target.design
+    length = max(frames * design.channels, 1 << 14) + 2 * design.delay
+    folder = Path(folder)
+    text = ["[flow]\nname = \"roundtrip measurement\"\n"]
+    inputs = {}
+    for name in signals:
+        x = probe_signal(name, length, design.channels)
+        x.tofile(folder / f"{name}.cf32")
+        inputs[name] = x
+        split_params = {k: v for k, v in target.split.params.items()}
+        merge_params = dict(target.merge.params) if target.merge else {}
+        text.append(f"[blocks.{name}-in]\ntype = \"iq-reader\"\npath = \"{name}.cf32\"\n"
+                    f"sample_rate = {target.rate!r}\ncentre_frequency = {target.centre!r}\nmetadata = \"none\"\n")
+        text.append(f"[blocks.{name}-split]\ntype = \"channelizer\"\n" + _params_toml(split_params))
+        text.append(f"[blocks.{name}-merge]\ntype = \"synthesis\"\n" + _params_toml(merge_params))
+        text.append(f"[blocks.{name}-out]\ntype = \"iq-writer\"\npath = \"{name}-out.cf32\"\nmetadata = false\n")
+        for a, b in ((f"{name}-in.samples", f"{name}-split.samples"), (f"{name}-split.channels", f"{name}-merge.channels"),
+                     (f"{name}-merge.samples", f"{name}-out.samples")):
+            text.append(f"[[links]]\nfrom = \"{a}\"\nto = \"{b}\"\n")
+    flow_path = folder / "roundtrip.toml"
+    flow_path.write_text("\n".join(text))
+    flow = load_flow(flow_path, load_registry(), output_dir=folder)
+    supervisor = Supervisor(flow, output_dir=folder, quiet=True)
+    if supervisor.run() != "finished":
+        raise ValueError("the measurement flow did not finish:\n" + json.dumps(supervisor.summary()["blocks"], indent=1))
+    pids = {s.pid for s in supervisor.blocks.values()}
+    results = []
+    for name in signals:
+        y = np.fromfile(folder / f"{name}-out.cf32", np.complex64)
+        results.append(analyse_round_trip(name, inputs[name], y, design.channels, expected_delay=design.delay,
+                                          decimation=design.decimation))
+    return results, len(pids)
+
+
+def _why(result, design):
+    k, level = result.worst_channel()
+    floor = design.round_trip_error_db
+    if level <= floor + 9:
+        return k, level, (f"within 9 dB of the design's predicted floor ({floor:.1f} dB, float64); "
+                          f"the rest is complex64 rounding")
+    return k, level, f"{level - floor:.1f} dB above the design's predicted floor ({floor:.1f} dB): see the error spectrum (--plot)"
+
+
+def run_roundtrip(args, out, log=None):
+    log = log or sys.stderr
+    target = _target(args)
+    signals = [s.strip() for s in args.signals.split(",") if s.strip()]
+    for s in signals:
+        if s not in SIGNALS:
+            raise ValueError(f"--signals: {s!r} is not one of {', '.join(SIGNALS)}")
+    processes = None
+    if target is None:
+        design = design_from_args(args)
+        label = f"design M={design.channels} D={design.decimation} ({design.shape})"
+        results = round_trip_in_process(design, signals, frames=args.frames)
+        where = "in process"
+    else:
+        design = target.design
+        label = target.label
+        with tempfile.TemporaryDirectory(prefix="bandloom-roundtrip-") as folder:
+            results, processes = round_trip_through_processes(target, signals, args.frames, folder)
+        where = f"through {processes} block processes"
+    worst = max(r.error_db for r in results)
+    passed = worst <= args.threshold
+    report = {"design": label, "where": where, "channels": design.channels, "decimation": design.decimation,
+              "design_delay": design.delay, "predicted_error_db": design.round_trip_error_db,
+              "threshold_db": args.threshold, "pass": passed, "signals": []}
+    for r in results:
+        k, level, why = _why(r, design)
+        report["signals"].append({
+            "signal": r.signal, "error_db": round(r.error_db, 2), "delay_samples": r.delay,
+            "delay_matches_design": r.delay == design.delay, "gain_db": round(r.gain_db, 6),
+            "phase_degrees": round(r.phase_degrees, 6), "error_after_gain_and_phase_db": round(r.error_after_gain_db, 2),
+            "worst_channel": k, "worst_channel_error_db": round(level, 2), "worst_channel_why": why,
+            "spurs_away_from_tones_db": None if r.spur_db is None else round(r.spur_db, 2),
+            "alias_image_level_db": None if r.alias_db is None else round(r.alias_db, 2),
+            "band_error_db": [round(float(v), 2) for v in r.band_error_db]})
+    if args.plot:
+        from .plots import round_trip_picture
+        round_trip_picture(results, label, args.plot)
+    if args.json:
+        out.write(json.dumps(report, indent=2) + "\n")
+    else:
+        out.write(f"round trip of {label}, {where}\n")
+        out.write(f"design delay {design.delay} samples; predicted error {design.round_trip_error_db:.1f} dB "
+                  f"(float64, white input)\n\n")
+        out.write(f"{'signal':<7} {'error dB':>9} {'delay':>7} {'gain dB':>10} {'phase deg':>10} "
+                  f"{'worst channel':>14} {'its error':>9}  other\n")
+        for s in report["signals"]:
+            other = []
+            if s["spurs_away_from_tones_db"] is not None:
+                other.append(f"spurs {s['spurs_away_from_tones_db']:.1f} dB")
+            if s["alias_image_level_db"] is not None:
+                other.append(f"aliases/images {s['alias_image_level_db']:.1f} dB")
+            out.write(f"{s['signal']:<7} {s['error_db']:>9.1f} {s['delay_samples']:>7} {s['gain_db']:>10.6f} "
+                      f"{s['phase_degrees']:>10.5f} {s['worst_channel']:>14} {s['worst_channel_error_db']:>9.1f}  "
+                      f"{', '.join(other)}\n")
+        worst_signal = max(report["signals"], key=lambda s: s["worst_channel_error_db"])
+        out.write(f"\nworst channel: {worst_signal['worst_channel']} ({worst_signal['signal']}), "
+                  f"{worst_signal['worst_channel_error_db']:.1f} dB: {worst_signal['worst_channel_why']}\n")
+        out.write(f"{'PASS' if passed else 'FAIL'}: worst error {worst:.1f} dB against the threshold "
+                  f"{args.threshold:g} dB\n")
+    return 0 if passed else 1
+
+
+def run_quality(args, out, log=None):
+    target = _target(args)
+    design = target.design if target else design_from_args(args)
+    label = target.label if target else f"design M={design.channels} D={design.decimation} ({design.shape})"
+    measured = measure_channel_response(design.analysis_bank, design.channels, steps_per_spacing=args.steps)
+    got = measured.figures(design.passband_edge)
+    computed = design.response
+    expected = {
+        "passband_ripple_db": computed.passband_ripple_db,
+        "edge_response_db": -computed.scalloping_loss_db,
+        "scalloping_loss_db": computed.scalloping_loss_db,
+        "adjacent_rejection_db": computed.adjacent_rejection_db,
+        "alternate_rejection_db": computed.alternate_rejection_db,
+        "alias_rejection_db": _alias_from_taps(design),
+        "enbw_bins": computed.enbw_bins,
+    }
+    rows = []
+    for key, title in (("passband_ripple_db", f"flat-part ripple (|f| <= {design.passband_edge:.2f}), dB"),
+                       ("edge_response_db", "response at the channel edge, dB"),
+                       ("scalloping_loss_db", "scalloping loss across the channel, dB"),
+                       ("adjacent_rejection_db", "adjacent-channel rejection (|f| >= 1), dB"),
+                       ("alternate_rejection_db", "alternate-channel rejection (|f| >= 2), dB"),
+                       ("alias_rejection_db", f"alias/image rejection at decimation {design.decimation}, dB"),
+                       ("enbw_bins", "equivalent noise bandwidth, bins")):
+        rows.append({"figure": key, "what": title, "measured": round(got[key], 4),
+                     "from_taps": round(float(expected[key]), 4),
+                     "difference": round(got[key] - float(expected[key]), 4)})
+    if args.plot:
+        from .plots import design_picture
+        design_picture(design, args.plot, measured=measured)
+    if args.json:
+        out.write(json.dumps({"design": label, "steps_per_spacing": args.steps, "figures": rows}, indent=2) + "\n")
+        return 0
+    out.write(f"channel quality of {label}, measured with {args.steps} tones per channel spacing through the "
+              f"complex64 bank, against the figures computed from the taps\n\n")
+    width = max(len(r["what"]) for r in rows)
+    out.write(f"{'figure':<{width}}  {'measured':>10}  {'from taps':>10}  {'difference':>10}\n")
+    for r in rows:
+        out.write(f"{r['what']:<{width}}  {r['measured']:>10.3f}  {r['from_taps']:>10.3f}  {r['difference']:>+10.3f}\n")
+    return 0
+
+
+def _alias_from_taps(design):
+    """Worst response at |f| >= M/D - 1/2 spacings: what folds into the passband after decimation."""
+    from bandloom.blocks.dsp.figures import frequency_response
+    offsets, response = frequency_response(design.analysis_taps, design.channels)
+    p = design.oversampling
+    far = np.abs(offsets) >= p - 0.5
+    return float(-20 * np.log10(np.max(np.abs(response[far])))) if far.any() else float("inf")
