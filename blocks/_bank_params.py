@@ -16,6 +16,8 @@ DESIGN_PARAMS = (
           "90 dB when critically sampled)", default=None, unit="dB", minimum=20, maximum=200),
     Param("window", "str", "window shaping the prototype, a name scipy.signal.get_window knows",
           default="kaiser"),
+    Param("tight_margin", "int", "branches either side of the shaped pulse the tight window may spread into "
+          "(root-raised-cosine; default 2)", default=None, minimum=0, maximum=64),
 )
 
 DESIGN_KEYS = tuple(p.name for p in DESIGN_PARAMS)

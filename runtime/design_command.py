@@ -24,6 +24,8 @@ def add_design_arguments(parser, *, required=True):
     parser.add_argument("--taps-per-branch", type=int, help="prototype length in multiples of M")
     parser.add_argument("--rolloff", type=float, help="root-raised-cosine rolloff, 0.05..1 (default 0.5)")
     parser.add_argument("--stopband-db", type=float, help="attenuation the Kaiser window is designed for, dB")
+    parser.add_argument("--tight-margin", type=int, help="branches either side the tight window may spread "
+                        "into (root-raised-cosine; default 2)")
     parser.add_argument("--window", default="kaiser", help="window name scipy.signal.get_window knows "
                         "(default kaiser, set by --stopband-db)")
 
@@ -47,7 +49,7 @@ def _save_taps(path, taps, header):
 def design_from_args(args):
     return design_bank(args.channels, args.decimation, oversample=args.oversample, shape=args.shape,
                        taps_per_branch=args.taps_per_branch, rolloff=args.rolloff,
-                       stopband_db=args.stopband_db, window=args.window)
+                       stopband_db=args.stopband_db, window=args.window, tight_margin=args.tight_margin)
 
 
 def describe(design):
