@@ -107,3 +107,17 @@ def test_roundtrip_needs_a_design_or_a_flow(capsys):
     """Without --channels or --flow the command says what it needs (exit 2, no traceback)."""
     assert main(["roundtrip"]) == 2
     assert "give --channels (with design knobs) or --flow FLOW" in capsys.readouterr().err
+
+
+def test_guide_taps_table_is_what_design_prints():
+    """Every row of the taps-per-branch table in docs/choosing-a-bank.md is reproduced by design_bank."""
+    import re
+    guide = (FLOWS.parent / "docs" / "choosing-a-bank.md").read_text()
+    rows = re.findall(r"^\| (\d+) \| (\d) \| (\d+)(?: \(default\))? \| ([\d.]+) dB \| ([\d.]+) dB \| (-[\d.]+) dB \|$",
+                      guide, re.M)
+    assert len(rows) == 8
+    for r, margin, stopband, rejection, ripple, trip in rows:
+        design = design_bank(64, taps_per_branch=int(r), tight_margin=int(margin), stopband_db=float(stopband))
+        assert design.response.adjacent_rejection_db == pytest.approx(float(rejection), abs=0.05)
+        assert design.response.passband_ripple_db == pytest.approx(float(ripple), abs=0.0005)
+        assert design.round_trip_error_db == pytest.approx(float(trip), abs=0.05)
