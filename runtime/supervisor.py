@@ -165,6 +165,8 @@ class Supervisor:
             if stopping_since is not None and aborting_since is None and now - stopping_since > DRAIN_SECONDS:
                 self.say(f"still draining after {DRAIN_SECONDS:g} s; aborting")
                 aborting_since = now
+            for name in self.releasable():
+                control.send(b"release " + name.encode())
             if aborting_since is not None:
                 control.send(b"abort")
                 if now - aborting_since > ABORT_SECONDS:
@@ -175,6 +177,19 @@ class Supervisor:
             if self.show_status and now - last_display >= DISPLAY_INTERVAL:
                 self.display()
                 last_display = now
+
+    def releasable(self):
+        """Blocks that have ended their streams and whose every internal consumer has finished."""
+        ready = []
+        for name, state in self.blocks.items():
+            if state.state != "ending" or state.process.poll() is not None:
+                continue
+            consumers = {link.target for port in self.flow.instances[name].outputs.values()
+                         for link in port if link.target}
+            if all(self.blocks[c].process.poll() is not None or self.blocks[c].state in ("done", "aborted")
+                   for c in consumers):
+                ready.append(name)
+        return ready
 
     def drain_stats(self, stats):
         while True:
@@ -194,8 +209,10 @@ class Supervisor:
             state.rate = rows / (message["time"] - previous["time"])
         state.last = message
         event = message.get("event")
-        if event in ("hello", "stats"):
+        if event in ("hello", "stats") and state.state != "ending":
             state.state = "running"
+        elif event == "ending":
+            state.state = "ending"
         elif event == "done":
             state.state = "done"
             state.report = message.get("report", [])

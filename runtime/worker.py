@@ -8,8 +8,16 @@ files) and exits 0. It ignores Ctrl-C itself: the supervisor coordinates the
 stop, so that sources end their streams and everything downstream drains.
 
 Control messages from the supervisor (PUB/SUB): ``stop`` — sources end their
-streams; ``abort`` — close everything now. Statistics go back to the
-supervisor (PUSH/PULL) twice a second and at the end.
+streams; ``abort`` — close everything now; ``release NAME`` — every consumer
+of block NAME has read its end of stream, so NAME may close its links.
+Statistics go back to the supervisor (PUSH/PULL) twice a second and at the end.
+
+Why the release: ZeroMQ counts a message as sent once it is written to the
+connection. If the sender then closes while the receiver, held back by its
+high-water mark, has not yet read the rest of the connection, the receiver
+drops what is left when it sees the connection close. So a block that has
+sent its end of stream keeps its connections open until the supervisor says
+its consumers have finished.
 """
 
 from __future__ import annotations
@@ -61,6 +69,7 @@ class Worker:
         self.stats_socket.connect(spec["stats"])
         self.stop = False
         self.abort = False
+        self.released = False
         self.inlets = []
         self.outlets = {}
         self.block = None
@@ -81,6 +90,8 @@ class Worker:
                 break
             if message == b"abort":
                 self.abort = True
+            elif message == b"release " + self.name.encode():
+                self.released = True
             elif message == b"stop":
                 if not self.stop and self.block is not None and self.block.is_source:
                     self.block.stop_requested()
@@ -176,6 +187,16 @@ class Worker:
             for outs in self.outlets.values():
                 for outlet in outs:
                     outlet.end(final)
+            self.wait_for_release()
+
+    def wait_for_release(self):
+        """Keep the links open until the consumers have read everything (see the module doc)."""
+        if not any(o.spec.get("endpoint", "").startswith("ipc://") and not o.spec.get("bind")
+                   for outs in self.outlets.values() for o in outs):
+            return
+        self.send_stats("ending")
+        while not self.released and not self.poll_control():
+            time.sleep(0.02)
 
     def close(self, event, **extra):
         report = []
