@@ -684,28 +684,10 @@ class _Checker:
                 for link in links:
                     if link.target != name:
                         continue
-                    if not made.get(link.source):
+                    resolved = self.link_stream(link, decls, made, instances)
+                    if resolved is None:
                         continue
-                    if decls[link.source].per_channel:
-                        self.problem(("links", link.index, "from"), f"{link.source} is per-channel "
-                                     f"({len(made[link.source])} copies); feed its outputs to blocks that are "
-                                     f"per-channel too, with per_channel = {{ from = \"{link.source}.{link.source_port}\" }}")
-                        continue
-                    src = made[link.source][0]
-                    stream = instances[src].output_streams.get(link.source_port)
-                    if stream is None:
-                        continue
-                    columns = None
-                    if link.select is not None:
-                        if stream.kind != "channels":
-                            self.problem(("links", link.index, "select"), f"{link.source}.{link.source_port} "
-                                         f"carries one stream, not channels; there is nothing to select")
-                            continue
-                        columns = self.resolve_selection(("links", link.index, "select"), link.select,
-                                                         stream, link.tolerance)
-                        if columns is None:
-                            continue
-                        stream = stream.select(columns)
+                    src, stream, columns = resolved
                     wiring[link.target_port] = dict(source=src, source_port=link.source_port, columns=columns,
                                                     stream=stream, where=("links", link.index), raw=link)
                 specs.append((name, {}, wiring))
@@ -749,31 +731,43 @@ class _Checker:
                 made[name].append(inst_name)
         # links to fixed endpoints
         for link in links:
-            if link.endpoint is None or link.source not in made or not made[link.source]:
+            if link.endpoint is None:
                 continue
-            if decls[link.source].per_channel:
-                self.problem(("links", link.index, "from"), f"{link.source} is per-channel; give each copy "
-                             f"its own endpoint through a per-channel block instead")
+            resolved = self.link_stream(link, decls, made, instances)
+            if resolved is None:
                 continue
-            src = made[link.source][0]
-            stream = instances[src].output_streams.get(link.source_port)
-            if stream is None:
-                continue
-            columns = None
-            if link.select is not None:
-                if stream.kind != "channels":
-                    self.problem(("links", link.index, "select"), "there is nothing to select in one stream")
-                    continue
-                columns = self.resolve_selection(("links", link.index, "select"), link.select, stream, link.tolerance)
-                if columns is None:
-                    continue
-                stream = stream.select(columns)
+            src, stream, columns = resolved
             out = Link(next_id, f"links[{link.index}]", src, link.source_port, columns, None, None, link.endpoint,
                        stream, queue=link.queue, when_full=link.when_full, insecure=link.insecure, keys=link.keys)
             next_id += 1
             instances[src].outputs.setdefault(link.source_port, []).append(out)
             expanded.append(out)
         return instances, expanded
+
+    def link_stream(self, link, decls, made, instances):
+        """(source instance, stream after the link's selection, selected columns) or None with a problem."""
+        if not made.get(link.source):
+            return None                     # the source had problems of its own, reported already
+        if decls[link.source].per_channel:
+            self.problem(("links", link.index, "from"), f"{link.source} is per-channel "
+                         f"({len(made[link.source])} copies); feed its outputs to blocks that are per-channel "
+                         f"too, with per_channel = {{ from = \"{link.source}.{link.source_port}\" }}")
+            return None
+        src = made[link.source][0]
+        stream = instances[src].output_streams.get(link.source_port)
+        if stream is None:
+            return None
+        columns = None
+        if link.select is not None:
+            if stream.kind != "channels":
+                self.problem(("links", link.index, "select"), f"{link.source}.{link.source_port} carries one "
+                             f"stream, not channels; there is nothing to select")
+                return None
+            columns = self.resolve_selection(("links", link.index, "select"), link.select, stream, link.tolerance)
+            if columns is None:
+                return None
+            stream = stream.select(columns)
+        return src, stream, columns
 
     @staticmethod
     def _where(path):
