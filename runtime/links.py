@@ -77,7 +77,8 @@ class Outlet:
             self.sock.bind(spec["endpoint"])
         else:
             self.sock.connect(spec["endpoint"])
-        self.next_index = 0
+        self.next_index = 0          # index after the last row sent
+        self.offered_index = 0       # index after the last row offered, sent or dropped
         self.seq = 0
         self.rows = 0
         self.messages = 0
@@ -116,6 +117,7 @@ class Outlet:
         count = len(data)
         if count == 0:
             return
+        self.offered_index = chunk.first_index + count
         gap = chunk.first_index - self.next_index
         if gap < 0:
             raise RuntimeError(f"link {self.spec['label']}: chunk starts at {chunk.first_index}, before "
@@ -135,8 +137,9 @@ class Outlet:
         self.next_index = chunk.first_index + count
 
     def end(self, final_index=None):
-        """Send end of stream; ``final_index`` (sources) counts rows lost after the last message."""
-        gap = max(0, (final_index or 0) - self.next_index)
+        """Send end of stream, counting rows lost after the last message: dropped here when the
+        link was full, or (``final_index``, from a live source) never delivered to the block."""
+        gap = max(0, max(final_index or 0, self.offered_index) - self.next_index)
         flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap else 0)
         header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
                                     dropped=gap, **self._fixed)
@@ -177,17 +180,22 @@ class Inlet:
         self.ended = False
 
     def receive(self):
-        """Take one message; return a Chunk, or None at end of stream. Raises wire.WireError."""
+        """Take one message; return a Chunk, or None at the end of the stream (then ``ended`` is set;
+        an end of stream that counts lost rows first returns them as an empty chunk). Raises
+        wire.WireError."""
         frames = self.sock.recv_multipart(copy=False)
         if len(frames) != 2:
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
         header = wire.decode_header(frames[0].buffer)
         if header["flags"] & wire.FLAG_END:
             self.ended = True
-            if header["dropped"]:
-                self.gaps += 1
-                self.missing += header["dropped"]
-            return None
+            if not header["dropped"]:
+                return None
+            # rows lost after the last message: an empty chunk tells the block how many
+            self.gaps += 1
+            self.missing += header["dropped"]
+            return Chunk(np.zeros((0,) if self.stream.width == 1 else (0, self.stream.width), self.stream.dtype),
+                         header["first_index"], discontinuity=True, dropped=header["dropped"])
         if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
                                  f"was set up for {self.stream.sample_type} x {self.stream.width}")

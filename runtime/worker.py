@@ -167,12 +167,12 @@ class Worker:
                     chunk = inlet.receive()
                 except wire.WireError as error:
                     raise RuntimeError(f"link {inlet.spec['label']}: bad message: {error}") from None
-                if chunk is None:
+                if chunk is not None:
+                    self.rows_in += chunk.count
+                    self.emit(self.block.consume(inlet.port, chunk))
+                if inlet.ended:
                     open_inlets.discard(inlet)
                     poller.unregister(sock)
-                    continue
-                self.rows_in += chunk.count
-                self.emit(self.block.consume(inlet.port, chunk))
             self.maybe_stats()
         self.emit(self.block.finish())
 

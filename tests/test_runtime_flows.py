@@ -308,3 +308,92 @@ def test_dead_block_is_named_and_run_fails(tmp_path):
     assert report["outcome"] == "failed"
     assert {b["state"] for name, b in report["blocks"].items() if name != "split"} <= {"done", "aborted"}
     assert "Traceback" not in stderr
+
+
+def test_encrypted_endpoint_needs_the_client_key(tmp_path, recording):
+    """An endpoint with keys = (from 'bandloom keys') talks CURVE: the key holder gets the channel, a stranger nothing."""
+    import zmq.auth
+    keys = tmp_path / "keys"
+    made = bandloom("keys", keys)
+    assert made.returncode == 0, made.stderr
+    port = _free_port()
+    flow = write_flow(tmp_path, SOURCE + f"""
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+
+        [[links]]
+        from = "split.channels"
+        select = 3
+        endpoint = "tcp://127.0.0.1:{port}"
+        keys = "keys"
+    """)
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
+                               "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
+    ctx = zmq.Context()
+    stranger = ctx.socket(zmq.PULL)
+    stranger.curve_publickey, stranger.curve_secretkey = zmq.curve_keypair()
+    stranger.curve_serverkey, _ = zmq.auth.load_certificate(str(keys / "server.key"))
+    stranger.setsockopt(zmq.RCVTIMEO, 1500)
+    stranger.connect(f"tcp://127.0.0.1:{port}")
+    with pytest.raises(zmq.Again):
+        stranger.recv_multipart()
+    stranger.close(linger=0)
+    client = ctx.socket(zmq.PULL)
+    client.curve_publickey, client.curve_secretkey = zmq.auth.load_certificate(str(keys / "client.key_secret"))
+    client.curve_serverkey, _ = zmq.auth.load_certificate(str(keys / "server.key"))
+    client.setsockopt(zmq.RCVTIMEO, 60_000)
+    client.connect(f"tcp://127.0.0.1:{port}")
+    parts = []
+    try:
+        while True:
+            header_bytes, payload = client.recv_multipart()
+            header = msgpack.unpackb(header_bytes, raw=False, strict_map_key=True)
+            if header["flags"] & 1:
+                break
+            parts.append(np.frombuffer(payload, "<c8"))
+    finally:
+        client.close(linger=0)
+        ctx.term()
+    _, stderr = runner.communicate(timeout=120)
+    assert runner.returncode == 0, stderr
+    expected, _ = reference_channels(recording)
+    assert np.max(np.abs(np.concatenate(parts) - expected[:, 3])) <= 1e-6 * np.max(np.abs(expected))
+
+
+def test_dropping_link_counts_and_flags_every_lost_sample(tmp_path):
+    """A when_full = "drop" link into a slow consumer drops whole messages; every one is counted and flagged."""
+    import json
+    flow = write_flow(tmp_path, """
+        [blocks.band]
+        type = "scenario"
+        sample_rate = "1 MHz"
+        duration = "2 s"
+        chunk_size = 5000
+        pace = true
+
+        [blocks.slow]
+        type = "discard"
+        rate_limit = "200 kHz"
+
+        [[links]]
+        from = "band.samples"
+        to = "slow.samples"
+        queue = 1
+        when_full = "drop"
+    """)
+    done, report = run_flow(flow, tmp_path)
+    assert done.returncode == 0, done.stderr
+    link = report["links"][0]
+    assert link["dropped_samples"] > 0 and link["dropped_messages"] > 0
+    assert link["sent_samples"] + link["dropped_samples"] == 2_000_000
+    rows, gaps, missing = (int(v) for v in __import__("re").findall(
+        r"discarded (\d+) samples; (\d+) gaps, (\d+) samples missing", report["blocks"]["slow"]["report"][0])[0])
+    # every dropped sample shows up as missing at the consumer, flagged by the message after it
+    assert rows == link["sent_samples"] and gaps > 0
+    assert missing == link["dropped_samples"] == link["missing_samples"]
+    assert rows + missing == 2_000_000
