@@ -275,6 +275,10 @@ class Block:
         """Lines for the run summary (for example a measured error); default none."""
         return []
 
+    def progress(self):
+        """Sources that know their length: (rows done, rows in all) for the status display; else None."""
+        return None
+
     def end_index(self):
         """Sources: the absolute index after the last row of the stream, if rows were lost after
         the last chunk produced (a live source dropping its final buffers); None otherwise."""

@@ -207,6 +207,9 @@ class IQReader(Block):
                 time.sleep(delay)
         return {"samples": [chunk]}
 
+    def progress(self):
+        return self.index, self.count * self.params["repeat"]
+
     def close(self):
         if getattr(self, "file", None):
             self.file.close()

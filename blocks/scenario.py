@@ -210,6 +210,9 @@ class Scenario(Block):
         self.noise_amplitude = np.sqrt(10 ** (self.params["noise"] / 10) / 2)
         self.clock = time.monotonic()
 
+    def progress(self):
+        return self.index, self.total
+
     def produce(self):
         if self.stopping or self.index >= self.total:
             return None

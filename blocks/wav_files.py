@@ -49,6 +49,9 @@ class WavReader(Block):
         self.offset = -128 if self.data.dtype == np.uint8 else 0
         self.index = 0
 
+    def progress(self):
+        return self.index, len(self.data)
+
     def produce(self):
         if self.stopping or self.index >= len(self.data):
             return None

@@ -244,7 +244,7 @@ class Supervisor:
         return rows
 
     def display(self):
-        lines = [f"{'block':<24} {'state':<9} {'rate/s':>12} {'samples':>12} {'queue':>6} {'drops':>8}"]
+        lines = [f"{'block':<24} {'state':<9} {'rate/s':>12} {'samples':>12} {'queue':>6} {'drops':>8}  progress"]
         queue_fill = {}
         for link, sent, recv in self.link_table():
             if link.target:
@@ -255,7 +255,11 @@ class Supervisor:
             drops = sum(o.get("dropped_rows", 0) for o in last.get("outputs", {}).values())
             done = max(last.get("rows_in", 0), last.get("rows_out", 0))
             fill = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
-            lines.append(f"{name[:24]:<24} {state.state:<9} {state.rate:>12.4g} {done:>12} {fill:>6} {drops:>8}")
+            bar = ""
+            if last.get("progress") and last["progress"][1]:
+                part = min(1.0, last["progress"][0] / last["progress"][1])
+                bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
+            lines.append(f"{name[:24]:<24} {state.state:<9} {state.rate:>12.4g} {done:>12} {fill:>6} {drops:>8}  {bar}")
         self.clear_display()
         self.log.write("\n".join(lines) + "\n")
         self.log.flush()

@@ -105,6 +105,9 @@ class Worker:
             "inputs": {str(i.id): i.stats() for i in self.inlets},
             "outputs": {str(o.id): o.stats() for outs in self.outlets.values() for o in outs},
         }
+        progress = self.block.progress() if self.block is not None and self.block.is_source else None
+        if progress:
+            message["progress"] = [int(progress[0]), int(progress[1])]
         message.update(extra)
         self.stats_socket.send(msgpack.packb(message, use_bin_type=True))
         self.last_stats = time.monotonic()

@@ -278,6 +278,7 @@ def test_status_display_only_on_a_terminal(tmp_path):
 
     shown = run()
     assert "block" in shown and "rate/s" in shown and "queue" in shown and "keep[1]" in shown
+    assert "] " in shown and "%" in shown                     # the source's progress bar
     quiet = run("--quiet")
     assert "rate/s" not in quiet
 
@@ -397,3 +398,48 @@ def test_dropping_link_counts_and_flags_every_lost_sample(tmp_path):
     assert rows == link["sent_samples"] and gaps > 0
     assert missing == link["dropped_samples"] == link["missing_samples"]
     assert rows + missing == 2_000_000
+
+
+def test_grid_offset_and_synthesis_from_a_subset(tmp_path, recording):
+    """grid_offset shifts the raster before the bank; synthesis of channels 2..5 alone (others silent) returns
+    exactly those channels' part of the band at the original rate and centre."""
+    from bandloom.blocks.dsp.mixing import shift_frequency
+    flow = write_flow(tmp_path, SOURCE + """
+        [blocks.split]
+        type = "channelizer"
+        channels = 16
+        grid_offset = "12.5 kHz"
+
+        [blocks.merge]
+        type = "synthesis"
+
+        [blocks.keep]
+        type = "iq-writer"
+        path = "part.cf32"
+
+        [[links]]
+        from = "source.samples"
+        to = "split.samples"
+
+        [[links]]
+        from = "split.channels"
+        select = "2..5"
+        to = "merge.channels"
+
+        [[links]]
+        from = "merge.samples"
+        to = "keep.samples"
+    """)
+    check = bandloom("check", flow)
+    assert "split.channels: 16 channels at 200.0 kHz each, spaced 100.0 kHz" in check.stdout
+    done, report = run_flow(flow, tmp_path / "out")
+    assert done.returncode == 0, done.stderr
+    design = design_bank(M)
+    shifted = shift_frequency(recording, 0, -12.5e3 / RATE)
+    frames = design.analysis_bank().process(shifted)
+    frames[:, [0, 1, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15]] = 0
+    expected = shift_frequency(design.synthesis_bank().process(frames), 0, 12.5e3 / RATE)
+    got = np.fromfile(tmp_path / "out" / "part.cf32", np.complex64)
+    assert np.max(np.abs(got - expected)) <= 1e-5 * np.max(np.abs(expected))
+    meta = __import__("json").loads((tmp_path / "out" / "part.sigmf-meta").read_text())
+    assert meta["captures"][0]["core:frequency"] == CENTRE and meta["global"]["core:sample_rate"] == RATE
