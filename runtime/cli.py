@@ -76,6 +76,8 @@ def main(argv=None) -> int:
     except (ValueError, UsageError, OSError) as error:
         if isinstance(error, BrokenPipeError):
             raise
+        if isinstance(error, OSError) and error.filename:
+            error = f"{error.filename}: {error.strerror}"
         print(f"bandloom {args.command}: error: {error}", file=sys.stderr)
         return 2
 

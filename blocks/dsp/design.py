@@ -184,6 +184,8 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
     window for 95 dB, tight with 2 margin branches; low-pass 8 taps per
     branch, Kaiser window for 90 dB.
     """
+    if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
+        raise ValueError(f"Parameter channels={channels!r} is not an integer >= 2!")
     if decimation is not None and oversample is not None:
         raise ValueError("Give decimation or oversample, not both!")
     if decimation is None:
@@ -199,6 +201,10 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
     if shape not in SHAPES:
         raise ValueError(f"Parameter shape={shape!r} is not one of {list(SHAPES)}!")
 
+    if shape != "root-raised-cosine":
+        for name, value in (("rolloff", rolloff), ("tight_margin", tight_margin)):
+            if value is not None:
+                raise ValueError(f"Parameter {name}={value!r} applies to shape='root-raised-cosine' only!")
     if shape == "rectangle":
         taps = np.full(M, 1.0 / M)
         return _matched(M, D, shape, "rectangle", 1, None, None, False, taps)

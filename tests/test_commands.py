@@ -1,0 +1,58 @@
+"""The design and bench commands: output for people and scripts, saved taps, errors without tracebacks."""
+
+import json
+
+import numpy as np
+import pytest
+
+from bandloom.blocks.dsp import design_bank
+from bandloom.runtime.cli import main
+from runner import bandloom
+
+
+def test_design_table_and_json(capsys):
+    """The table names the figures; --json gives the same numbers as design_bank."""
+    assert main(["design", "--channels", "256", "--oversample", "2"]) == 0
+    table = capsys.readouterr().out
+    for label in ("adjacent-channel rejection", "passband ripple", "round-trip error", "cost vs bare FFT"):
+        assert label in table
+    assert main(["design", "--channels", "256", "--json"]) == 0
+    figures = json.loads(capsys.readouterr().out)
+    assert figures["adjacent_rejection_db"] == design_bank(256).response.adjacent_rejection_db
+    assert figures["delay_samples"] == 4096
+
+
+def test_design_saves_taps_as_npy_and_text(tmp_path, capsys):
+    """--taps and --synthesis-taps write the exact taps, .npy as binary and other names as text."""
+    assert main(["design", "--channels", "32", "--taps", str(tmp_path / "a.npy"),
+                 "--synthesis-taps", str(tmp_path / "s.txt")]) == 0
+    design = design_bank(32)
+    assert np.array_equal(np.load(tmp_path / "a.npy"), design.analysis_taps)
+    assert np.allclose(np.loadtxt(tmp_path / "s.txt"), design.synthesis_taps, rtol=1e-15, atol=0)
+
+
+@pytest.mark.parametrize("argv,message", [
+    (["design", "--channels", "0"], "Parameter channels=0 is not an integer >= 2!"),
+    (["design", "--channels", "16", "--oversample", "3"], "Parameter oversample=3 does not divide channels=16!"),
+    (["design", "--channels", "16", "--shape", "low-pass", "--rolloff", "0.3"],
+     "Parameter rolloff=0.3 applies to shape='root-raised-cosine' only!"),
+    (["design", "--channels", "16", "--window", "nonesuch"], "window='nonesuch'"),
+])
+def test_design_errors_are_one_line(argv, message):
+    """Bad knobs give 'bandloom design: error: ...' and exit 2, never a traceback."""
+    done = bandloom(*argv)
+    assert done.returncode == 2
+    assert done.stderr.startswith("bandloom design: error: ") and message in done.stderr
+    assert "Traceback" not in done.stderr
+
+
+def test_bench_json_reports_ratios_measured_in_the_same_run():
+    """bench --json gives throughput and the ratio to a bare FFT for each case (no speed is asserted)."""
+    done = bandloom("bench", "--channels", "64", "--taps-per-branch", "4", "--oversample", "1,2",
+                    "--samples", "65536", "--repeats", "1", "--json")
+    assert done.returncode == 0, done.stderr
+    cases = json.loads(done.stdout)
+    assert [(c["channels"], c["oversample"]) for c in cases] == [(64, 1), (64, 2)]
+    for c in cases:
+        assert c["analysis_ratio"] > 0 and c["synthesis_ratio"] > 0 and c["analysis_msps"] > 0
+        assert c["model_ratio"] == pytest.approx(1 + 4 / 6)
