@@ -7,6 +7,8 @@ import sys
 import textwrap
 import time
 
+from pathlib import Path
+
 import msgpack
 import numpy as np
 import pytest
@@ -238,7 +240,12 @@ def test_ctrl_c_stops_cleanly_and_says_interrupted(tmp_path):
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path / "out"), "--report", str(tmp_path / "r.json")],
                               stderr=subprocess.PIPE, text=True)
-    time.sleep(4.0)
+    deadline = time.monotonic() + 60                         # wait until both writers have data
+    while time.monotonic() < deadline and not all(
+            (tmp_path / "out" / f"ch{k}.cf32").exists() and (tmp_path / "out" / f"ch{k}.cf32").stat().st_size
+            for k in (1, 2)):
+        time.sleep(0.2)
+    time.sleep(0.5)
     runner.send_signal(signal.SIGINT)
     _, stderr = runner.communicate(timeout=60)
     assert runner.returncode == -signal.SIGINT, stderr
@@ -296,8 +303,12 @@ def test_dead_block_is_named_and_run_fails(tmp_path):
         time.sleep(0.3)
         out = subprocess.run(["pgrep", "-P", str(runner.pid), "-f", "bandloom.runtime.worker"],
                              capture_output=True, text=True).stdout.split()
-        if len(out) == 4:
-            victim = sorted(int(p) for p in out)[1]          # started second: the channelizer
+        for pid in out:                                      # the channelizer is the second instance
+            try:
+                if Path(f"/proc/{pid}/cmdline").read_bytes().endswith(b"spec-1.json\x00"):
+                    victim = int(pid)
+            except OSError:
+                pass
     assert victim is not None
     time.sleep(2.0)
     os.kill(victim, 9)

@@ -193,7 +193,9 @@ def test_udp_reader_skips_headers_and_keeps_order(tmp_path, rng):
                     '[[links]]\nfrom = "radio.samples"\nto = "keep.samples"\n')
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path)], stderr=subprocess.PIPE)
-    time.sleep(2.5)                               # let the reader bind before sending
+    deadline = time.monotonic() + 60              # wait until the reader has bound the port (Linux /proc)
+    while time.monotonic() < deadline and f":{port:04X} " not in Path("/proc/net/udp").read_text():
+        time.sleep(0.2)
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as sender:
         for i in range(40):
             sender.sendto(i.to_bytes(4, "big") + x[i * 256:(i + 1) * 256].tobytes(), ("127.0.0.1", port))
