@@ -279,9 +279,11 @@ class Block:
         """Sources that know their length: (rows done, rows in all) for the status display; else None."""
         return None
 
-    def end_index(self):
-        """Sources: the absolute index after the last row of the stream, if rows were lost after
-        the last chunk produced (a live source dropping its final buffers); None otherwise."""
+    def end_index(self, port):
+        """The absolute index just after the stream's last row on output ``port``, when that is
+        beyond the last chunk produced (a live source that dropped its final buffers, a
+        channelizer that skipped frames of silence after a final gap); None otherwise. The end of
+        stream then counts the difference as missing rows."""
         return None
 
     def stop_requested(self):

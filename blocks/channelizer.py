@@ -66,6 +66,10 @@ class Channelizer(Block):
         return {"channels": out}
 
 
+    def end_index(self, port):
+        return self.bank.frames_produced
+
+
 class Synthesis(Block):
     type_name = "synthesis"
     summary = "Merge channels from a channelizer back into one wideband stream (polyphase synthesis)."
@@ -126,3 +130,6 @@ class Synthesis(Block):
         if self.shift:
             out = [Chunk(shift_frequency(c.data, c.first_index, self.shift), c.first_index) for c in out]
         return {"samples": out}
+
+    def end_index(self, port):
+        return self.bank.frames_consumed * self.design.decimation

@@ -73,7 +73,7 @@ class _LiveSource(Block):
             self.received += len(data)
             return {"samples": [Chunk(data, index)]}
 
-    def end_index(self):
+    def end_index(self, port):
         return self.next_index
 
     def report(self):

@@ -186,8 +186,8 @@ class Worker:
         else:
             self.run_consumer()
         if not self.abort:
-            final = self.block.end_index() if self.block.is_source else None
-            for outs in self.outlets.values():
+            for port, outs in self.outlets.items():
+                final = self.block.end_index(port)
                 for outlet in outs:
                     outlet.end(final)
             self.wait_for_release()
