@@ -157,10 +157,9 @@ def _free_port():
         return s.getsockname()[1]
 
 
-def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording):
-    """A consumer written from docs/wire.md with only pyzmq, msgpack and numpy gets AnalysisBank's channel 2."""
-    port = _free_port()
-    flow = write_flow(tmp_path, SOURCE + f"""
+def endpoint_flow(tmp_path, port, channel, extra=""):
+    """The test recording channelized, one channel exposed at tcp://127.0.0.1:PORT."""
+    return write_flow(tmp_path, SOURCE + f"""
         [blocks.split]
         type = "channelizer"
         channels = 16
@@ -171,9 +170,16 @@ def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording
 
         [[links]]
         from = "split.channels"
-        select = 2
+        select = {channel}
         endpoint = "tcp://127.0.0.1:{port}"
+        {extra}
     """)
+
+
+def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording):
+    """A consumer written from docs/wire.md with only pyzmq, msgpack and numpy gets AnalysisBank's channel 2."""
+    port = _free_port()
+    flow = endpoint_flow(tmp_path, port, 2)
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
     ctx = zmq.Context()
@@ -329,21 +335,7 @@ def test_encrypted_endpoint_needs_the_client_key(tmp_path, recording):
     made = bandloom("keys", keys)
     assert made.returncode == 0, made.stderr
     port = _free_port()
-    flow = write_flow(tmp_path, SOURCE + f"""
-        [blocks.split]
-        type = "channelizer"
-        channels = 16
-
-        [[links]]
-        from = "source.samples"
-        to = "split.samples"
-
-        [[links]]
-        from = "split.channels"
-        select = 3
-        endpoint = "tcp://127.0.0.1:{port}"
-        keys = "keys"
-    """)
+    flow = endpoint_flow(tmp_path, port, 3, 'keys = "keys"')
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
     ctx = zmq.Context()
