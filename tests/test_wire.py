@@ -77,3 +77,27 @@ def test_inlet_names_the_link_and_refuses_wrong_shape(tmp_path):
         push.close(linger=0)
         inlet.close()
         ctx.term()
+
+
+from hypothesis import given, settings, strategies as st
+
+
+FIELDS = ["version", "stream", "seq", "first_index", "count", "width", "sample_type", "sample_rate",
+          "centre_frequency", "flags", "dropped", "channels", "channel_frequencies"]
+VALUES = st.one_of(st.integers(-2**63, 2**64 - 1), st.floats(), st.text(max_size=8), st.booleans(), st.none(),
+                   st.binary(max_size=8), st.lists(st.integers(-5, 5), max_size=4), st.sampled_from(["cf32", "f32"]))
+
+
+@settings(max_examples=400, deadline=None)
+@given(raw=st.one_of(
+    st.binary(max_size=400),
+    st.dictionaries(st.one_of(st.sampled_from(FIELDS), st.text(max_size=12)), VALUES, max_size=16)
+    .map(lambda d: msgpack.packb(d, use_bin_type=True))),
+    payload=st.binary(max_size=64))
+def test_untrusted_bytes_raise_only_wire_errors(raw, payload):
+    """Arbitrary bytes and arbitrary msgpack maps are refused with WireError, never another exception."""
+    try:
+        h = wire.decode_header(raw)
+        wire.decode_payload(h, payload)
+    except wire.WireError:
+        pass
