@@ -188,7 +188,9 @@ def test_udp_reader_skips_headers_and_keeps_order(tmp_path, rng):
         port = probe.getsockname()[1]
     x = complex_noise(rng, 40 * 256)
     flow = tmp_path / "udp.toml"
+    # a deep queue: this test is about headers and order, not about dropping (tested above)
     flow.write_text(f'[blocks.radio]\ntype = "udp-reader"\nsample_rate = "48 kHz"\nport = {port}\nheader_bytes = 4\n'
+                    'queue = 10000\n'
                     'idle_timeout = "1.5 s"\n[blocks.keep]\ntype = "iq-writer"\npath = "udp.cf32"\n'
                     '[[links]]\nfrom = "radio.samples"\nto = "keep.samples"\n')
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
