@@ -150,8 +150,9 @@ class Supervisor:
                     if code == 0 and state.state not in ("error",):
                         state.state = state.state if state.state in ("done", "aborted") else "done"
                     else:
+                        if state.state != "error":          # an error event already gave the reason
+                            state.exit_reason = ""
                         state.state = "died" if state.state != "error" else "failed"
-                        state.exit_reason = _describe_exit(code)
                         self.failed.append(state.name)
             running = [s for s in self.blocks.values() if s.process.poll() is None]
             if not running:
@@ -299,8 +300,9 @@ class Supervisor:
         print(f"bandloom: flow {summary['name']!r} {summary['outcome']} in {summary['seconds']:.2f} s", file=out)
         for name in self.failed:
             s = self.blocks[name]
+            how = "failed" if s.state == "failed" else "died"
             reason = f": {s.exit_reason}" if s.exit_reason else ""
-            print(f"bandloom: block {name!r} (pid {s.pid}) died ({_describe_exit(s.process.returncode)}){reason}",
+            print(f"bandloom: block {name!r} (pid {s.pid}) {how} ({_describe_exit(s.process.returncode)}){reason}",
                   file=out)
         width = max([len(x["link"]) for x in summary["links"]] + [4])
         print(f"  {'link':<{width}}  {'samples':>12}  {'messages':>9}  {'dropped':>9}  {'missing':>9}  "

@@ -235,7 +235,12 @@ def main():
         worker.close("aborted")
         return 0
     except Exception as error:
-        message = f"{type(error).__name__}: {error}" if not isinstance(error, (ValueError, OSError)) else str(error)
+        if isinstance(error, OSError) and error.filename:
+            message = f"{error.filename}: {error.strerror}"
+        elif isinstance(error, (ValueError, OSError)):
+            message = str(error)
+        else:
+            message = f"{type(error).__name__}: {error}"
         detail = traceback.format_exc() if os.environ.get("BANDLOOM_DEBUG") else ""
         print(f"bandloom: block {worker.name!r} failed: {message}", file=sys.stderr)
         if detail:

@@ -446,3 +446,27 @@ def test_grid_offset_and_synthesis_from_a_subset(tmp_path, recording):
     assert np.max(np.abs(got - expected)) <= 1e-5 * np.max(np.abs(expected))
     meta = __import__("json").loads((tmp_path / "out" / "part.sigmf-meta").read_text())
     assert meta["captures"][0]["core:frequency"] == CENTRE and meta["global"]["core:sample_rate"] == RATE
+
+
+def test_block_that_fails_is_named_with_its_reason(tmp_path):
+    """A block whose output cannot be opened fails with the file and the reason; the run exits 1, no traceback."""
+    (tmp_path / "out" / "target.cf32").mkdir(parents=True)
+    flow = write_flow(tmp_path, """
+        [blocks.band]
+        type = "scenario"
+        sample_rate = "100 kHz"
+        duration = "0.5 s"
+
+        [blocks.keep]
+        type = "iq-writer"
+        path = "target.cf32"
+
+        [[links]]
+        from = "band.samples"
+        to = "keep.samples"
+    """)
+    done, report = run_flow(flow, tmp_path / "out")
+    assert done.returncode == 1
+    assert report["outcome"] == "failed" and report["blocks"]["keep"]["state"] == "failed"
+    assert "failed (exit status 1): " in done.stderr and "target.cf32: Is a directory" in done.stderr
+    assert "Traceback" not in done.stderr
