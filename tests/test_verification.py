@@ -83,12 +83,15 @@ def test_tone_measurement_sees_a_plain_fft_bank_leak():
 
 
 def test_probe_signals_are_what_they_say():
-    """The comb has tones at every channel centre and edge; the chirp covers the band; all unit RMS."""
+    """The comb's tones sit at every channel centre, edge and quarter point; all signals have unit RMS."""
     M, n = 8, 8192
     comb = probe_signal("comb", n, M)
     spectrum = np.abs(np.fft.fft(comb)) ** 2
-    peaks = np.sort(np.argsort(spectrum)[-3 * M:])
-    assert set(peaks * M // n * 4 % 4) == {0} or len(peaks) == 3 * M
+    from bandloom.blocks.dsp.verification import comb_frequencies
+    peaks = set(np.argsort(spectrum)[-3 * M:].tolist())
+    expected = set((np.round(comb_frequencies(M) * n).astype(int) % n).tolist())
+    assert len(expected) == 3 * M and peaks == expected      # centres, edges and quarter points
+    assert spectrum[sorted(expected)].min() > 1e6 * np.median(spectrum)
     for name in ("noise", "comb", "chirp", "tone"):
         assert np.mean(np.abs(probe_signal(name, n, M)) ** 2) == pytest.approx(1.0, rel=0.05)
 
@@ -121,3 +124,25 @@ def test_guide_taps_table_is_what_design_prints():
         assert design.response.adjacent_rejection_db == pytest.approx(float(rejection), abs=0.05)
         assert design.response.passband_ripple_db == pytest.approx(float(ripple), abs=0.0005)
         assert design.round_trip_error_db == pytest.approx(float(trip), abs=0.05)
+
+
+def test_compare_block_finds_an_unknown_delay(tmp_path):
+    """Without a design delay the compare block finds the lag by cross-correlation and measures a clean copy."""
+    from bandloom.blocks.block import BlockContext, Chunk, StreamInfo
+    from bandloom.blocks.compare import Compare
+    rng = np.random.default_rng(3)
+    x = (rng.standard_normal(100_000) + 1j * rng.standard_normal(100_000)).astype(np.complex64)
+    y = (0.5j * np.concatenate([np.zeros(777, np.complex64), x])[:100_000]).astype(np.complex64)
+    block = Compare({p.name: p.default for p in Compare.parameters}, BlockContext("c", tmp_path / "f.toml", tmp_path))
+    stream = StreamInfo("samples", "cf32", 1e6)
+    block.output_streams({"reference": stream, "test": stream})
+    block.start({"reference": stream, "test": stream})
+    for start in range(0, 100_000, 7000):
+        block.consume("reference", Chunk(x[start:start + 7000], start))
+        block.consume("test", Chunk(y[start:start + 7000], start))
+    block.finish()
+    figures = block.figures()
+    assert figures["delay_samples"] == 777 and figures["delay_found_by"] == "cross-correlation"
+    assert figures["gain_db"] == pytest.approx(20 * np.log10(0.5), abs=1e-4)
+    assert figures["phase_degrees"] == pytest.approx(90, abs=1e-3)
+    assert figures["error_after_gain_and_phase_db"] < -120 and not figures["pass"]
