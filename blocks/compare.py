@@ -7,15 +7,8 @@ import json
 import numpy as np
 
 from .block import Block, BlockError, Param, Port
+from .dsp.verification import estimate_delay
 from .units import format_frequency
-
-
-def estimate_delay(reference, test, max_delay):
-    """Lag d (0..max_delay) maximising |sum test[m + d] conj(reference[m])| (FFT cross-correlation)."""
-    n = len(reference)
-    size = 1 << int(np.ceil(np.log2(n + len(test))))
-    corr = np.fft.ifft(np.fft.fft(test, size) * np.conj(np.fft.fft(reference, size)))
-    return int(np.argmax(np.abs(corr[:max_delay + 1])))
 
 
 class Compare(Block):

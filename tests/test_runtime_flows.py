@@ -56,22 +56,27 @@ chunk_size = 7000
 """
 
 
-def test_eight_channels_to_eight_writer_processes(tmp_path, recording):
-    """16 channels at 2x oversampling, 8 selected, each to its own writer process; files equal AnalysisBank."""
-    flow = write_flow(tmp_path, SOURCE + """
+def writers_flow(tmp_path, path, select):
+    """The test recording channelized into 16 channels, the selected ones each to its own writer process."""
+    return write_flow(tmp_path, SOURCE + f"""
         [blocks.split]
         type = "channelizer"
         channels = 16
 
         [blocks.keep]
         type = "iq-writer"
-        path = "ch{channel:02d}.cf32"
-        per_channel = { from = "split.channels", select = [0, 1, 2, 3, "12..15"] }
+        path = "{path}"
+        per_channel = {{ from = "split.channels", select = {select} }}
 
         [[links]]
         from = "source.samples"
         to = "split.samples"
     """)
+
+
+def test_eight_channels_to_eight_writer_processes(tmp_path, recording):
+    """16 channels at 2x oversampling, 8 selected, each to its own writer process; files equal AnalysisBank."""
+    flow = writers_flow(tmp_path, "ch{channel:02d}.cf32", '[0, 1, 2, 3, "12..15"]')
     done, report = run_flow(flow, tmp_path / "out")
     assert done.returncode == 0, done.stderr
     assert "Traceback" not in done.stderr
@@ -90,20 +95,7 @@ def test_eight_channels_to_eight_writer_processes(tmp_path, recording):
 
 def test_channels_selected_by_frequency(tmp_path, recording):
     """Selecting "156.2 MHz" and "155.7 MHz" picks channels 2 and 13 (centre + k*100 kHz, FFT order)."""
-    flow = write_flow(tmp_path, SOURCE + """
-        [blocks.split]
-        type = "channelizer"
-        channels = 16
-
-        [blocks.keep]
-        type = "iq-writer"
-        path = "{frequency}.cf32"
-        per_channel = { from = "split.channels", select = ["156.2 MHz", "155.700 MHz"] }
-
-        [[links]]
-        from = "source.samples"
-        to = "split.samples"
-    """)
+    flow = writers_flow(tmp_path, "{frequency}.cf32", '["156.2 MHz", "155.700 MHz"]')
     done, report = run_flow(flow, tmp_path / "out")
     assert done.returncode == 0, done.stderr
     expected, _ = reference_channels(recording)
