@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from .block import BlockError, Param
 from .dsp.design import SHAPES, design_bank
+from .dsp.errors import ParameterError
 
 DESIGN_PARAMS = (
     Param("shape", "choice", "prototype shape (default: root-raised-cosine when oversampled, "
@@ -31,9 +32,6 @@ def make_design(channels, oversample, knobs):
                          f"(choose one of {divisors})", param="oversample")
     try:
         return design_bank(channels, oversample=oversample, **{k: knobs.get(k) for k in DESIGN_KEYS})
-    except ValueError as error:
-        message = str(error)
-        for key in DESIGN_KEYS:
-            if f"{key}=" in message:
-                raise BlockError(message, param=key) from None
-        raise BlockError(message) from None
+    except ParameterError as error:
+        param = error.param if error.param in DESIGN_KEYS + ("oversample", "channels") else None
+        raise BlockError(str(error), param=param) from None

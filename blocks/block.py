@@ -27,30 +27,22 @@ before it (lost upstream or dropped by an overloaded link).
 
 from __future__ import annotations
 
-import difflib
-from dataclasses import dataclass, field, replace
+import sys
+import time
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
+from typing import IO, Any, ClassVar
 
 import numpy as np
 
-from .units import UnitError, parse_quantity
+from .params import REQUIRED, Param, toml_repr
+from .sample_formats import STREAM_TYPES
 
-SAMPLE_TYPES = {"cf32": np.dtype(np.complex64), "f32": np.dtype(np.float32)}
+__all__ = ["Block", "BlockContext", "BlockError", "Chunk", "Output", "Param", "Pacer", "Port", "REQUIRED",
+           "SAMPLE_TYPES", "StreamInfo", "toml_repr"]
 
-REQUIRED = object()
-
-
-def toml_repr(value):
-    """A value as it would be written in TOML, for messages: true, "text", 16, [1, 2]."""
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(value, list):
-        return "[" + ", ".join(toml_repr(v) for v in value) + "]"
-    if isinstance(value, dict):
-        return "{ " + ", ".join(f"{k} = {toml_repr(v)}" for k, v in value.items()) + " }"
-    return repr(value)
+SAMPLE_TYPES = STREAM_TYPES
 
 
 class BlockError(ValueError):
@@ -59,82 +51,10 @@ class BlockError(ValueError):
     ``param`` names the parameter at fault, if one is; ``port`` the input port.
     """
 
-    def __init__(self, message, *, param=None, port=None):
+    def __init__(self, message: str, *, param: str | None = None, port: str | None = None) -> None:
         super().__init__(message)
         self.param = param
         self.port = port
-
-
-@dataclass(frozen=True)
-class Param:
-    """A declared parameter.
-
-    ``kind`` is one of ``int``, ``float``, ``str``, ``bool``, ``choice``,
-    ``quantity`` (a number with ``unit``: Hz, s, dB or dBFS), ``input-path``
-    (a file that must exist, relative to the flow file's folder),
-    ``output-path`` (relative to the run's output folder; may contain
-    ``{channel}``-style placeholders), ``channels`` (a channel selection, see
-    docs/flow-files.md) or ``list``.
-    """
-
-    name: str
-    kind: str
-    doc: str
-    default: object = REQUIRED
-    unit: str | None = None
-    choices: tuple = ()
-    minimum: float | None = None
-    maximum: float | None = None
-
-    @property
-    def required(self):
-        return self.default is REQUIRED
-
-    def describe_type(self):
-        if self.kind == "quantity":
-            return f"number in {self.unit}"
-        if self.kind == "choice":
-            return "one of " + ", ".join(toml_repr(c) for c in self.choices)
-        return {"int": "whole number", "float": "number", "str": "text", "bool": "true or false",
-                "input-path": "path of an existing file", "output-path": "path of a file to write",
-                "list": "list", "channels": "channel selection"}.get(self.kind, self.kind)
-
-    def convert(self, value):
-        """Check and convert a value from the flow file; raise ValueError saying what was expected."""
-        kind = self.kind
-        if kind == "int":
-            if isinstance(value, bool) or not isinstance(value, int):
-                raise ValueError(f"expected a whole number, got {toml_repr(value)}")
-            value = int(value)
-        elif kind == "float":
-            if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise ValueError(f"expected a number, got {toml_repr(value)}")
-            value = float(value)
-        elif kind == "quantity":
-            try:
-                value = parse_quantity(value, self.unit)
-            except UnitError as error:
-                raise ValueError(str(error)) from None
-        elif kind == "bool":
-            if not isinstance(value, bool):
-                raise ValueError(f"expected true or false, got {toml_repr(value)}")
-        elif kind in ("str", "input-path", "output-path"):
-            if not isinstance(value, str) or not value:
-                raise ValueError(f"expected {self.describe_type()} as a quoted string, got {toml_repr(value)}")
-        elif kind == "choice":
-            if value not in self.choices:
-                hint = difflib.get_close_matches(str(value), [str(c) for c in self.choices], n=1)
-                extra = f" (did you mean {toml_repr(hint[0])}?)" if hint else ""
-                raise ValueError(f"expected one of {', '.join(toml_repr(c) for c in self.choices)}, "
-                                 f"got {toml_repr(value)}{extra}")
-        elif kind == "list":
-            if not isinstance(value, list):
-                raise ValueError(f"expected a list, got {toml_repr(value)}")
-        if self.minimum is not None and isinstance(value, (int, float)) and value < self.minimum:
-            raise ValueError(f"expected at least {self.minimum:g}, got {toml_repr(value)}")
-        if self.maximum is not None and isinstance(value, (int, float)) and value > self.maximum:
-            raise ValueError(f"expected at most {self.maximum:g}, got {toml_repr(value)}")
-        return value
 
 
 @dataclass(frozen=True)
@@ -145,7 +65,7 @@ class Port:
     name: str
     kind: str
     doc: str
-    sample_types: tuple = ("cf32",)
+    sample_types: tuple[str, ...] = ("cf32",)
     required: bool = True
 
 
@@ -160,28 +80,36 @@ class StreamInfo:
     channelizer's M and ``channel_spacing`` the distance between adjacent
     channel centres in Hz; ``design`` the channelizer's design knobs (so a synthesis
     block can match them).
+
+    ``to_dict`` and ``from_dict`` carry a description between processes as
+    plain JSON-able values:
+
+    >>> s = StreamInfo("channels", "cf32", 50e3, 156e6, channels=(0, 1), channel_frequencies=(156e6, 156.025e6))
+    >>> StreamInfo.from_dict(s.to_dict()) == s, s.width
+    (True, 2)
     """
 
     kind: str
     sample_type: str
     sample_rate: float
     centre_frequency: float = 0.0
-    channels: tuple = ()
-    channel_frequencies: tuple = ()
+    channels: tuple[int, ...] = ()
+    channel_frequencies: tuple[float, ...] = ()
     channel_count: int = 0
     channel_spacing: float = 0.0
-    design: dict = field(default_factory=dict, compare=False)
+    design: dict[str, Any] = field(default_factory=dict, compare=False)
     start_time: str | None = None
 
     @property
-    def width(self):
+    def width(self) -> int:
+        """Columns of a chunk's data: the number of channels, or 1 for a samples stream."""
         return len(self.channels) if self.kind == "channels" else 1
 
     @property
-    def dtype(self):
+    def dtype(self) -> np.dtype:
         return SAMPLE_TYPES[self.sample_type]
 
-    def select(self, columns):
+    def select(self, columns: list[int]) -> StreamInfo:
         """The stream carrying only ``columns`` (positions in ``channels``); one column gives samples."""
         if self.kind != "channels":
             raise BlockError("only a channels stream can be selected from")
@@ -194,6 +122,18 @@ class StreamInfo:
         return replace(self, channels=tuple(self.channels[c] for c in columns),
                        channel_frequencies=tuple(self.channel_frequencies[c] for c in columns))
 
+    def to_dict(self) -> dict[str, Any]:
+        """Plain values (lists for tuples) for JSON or msgpack."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> StreamInfo:
+        """The inverse of :meth:`to_dict`."""
+        values = dict(data)
+        for key in ("channels", "channel_frequencies"):
+            values[key] = tuple(values.get(key) or ())
+        return cls(**values)
+
 
 @dataclass
 class Chunk:
@@ -205,46 +145,120 @@ class Chunk:
     dropped: int = 0
 
     @property
-    def count(self):
+    def count(self) -> int:
         return len(self.data)
+
+    def with_gap_filled(self) -> np.ndarray:
+        """``data`` preceded by ``dropped`` zero rows: the stream with its gap kept in absolute time."""
+        if not self.dropped:
+            return self.data
+        zeros = np.zeros((self.dropped,) + self.data.shape[1:], self.data.dtype)
+        return np.concatenate([zeros, self.data])
+
+
+#: What ``produce``, ``consume`` and ``finish`` return: chunks by output port.
+Output = Mapping[str, "list[Chunk] | Chunk"]
 
 
 @dataclass(frozen=True)
 class BlockContext:
-    """Where a block instance lives: its name, the flow's folder and the output folder."""
+    """Where a block instance lives: its name, the flow's folder and the output folder.
+
+    ``placeholders`` are the values a per-channel copy fills into its output
+    paths (``{channel}``, ``{frequency}``, ``{frequency_mhz}``).
+    """
 
     name: str
     flow_path: Path
     output_dir: Path
-    placeholders: dict = field(default_factory=dict)
+    placeholders: dict[str, Any] = field(default_factory=dict)
 
-    def input_path(self, text):
+    def input_path(self, text: str) -> Path:
+        """A path from the flow file: relative to the flow file's folder."""
         path = Path(text).expanduser()
         return path if path.is_absolute() else self.flow_path.parent / path
 
-    def output_path(self, text):
+    def output_path(self, text: str) -> Path:
+        """A path to write, placeholders filled: relative to the run's output folder."""
         path = Path(text.format_map(self.placeholders)).expanduser()
         return path if path.is_absolute() else self.output_dir / path
 
 
+class Pacer:
+    """Sleeps so that rows leave no faster than ``rate`` per second, counted from creation."""
+
+    def __init__(self, rate: float) -> None:
+        self.rate = rate
+        self.started = time.monotonic()
+
+    def wait_until(self, rows: int) -> None:
+        """Return once ``rows`` rows are due (at once if they are already late)."""
+        delay = self.started + rows / self.rate - time.monotonic()
+        if delay > 0:
+            time.sleep(delay)
+
+
 class Block:
-    """Base class of every block type; see the module doc and DEVELOPERS.md."""
+    """Base class of every block type.
 
-    type_name = ""
-    summary = ""
-    parameters: tuple = ()
-    inputs: tuple = ()
-    outputs: tuple = ()
-    is_source = False
-    uses_stdin = False     # the one block of a flow that reads the run's standard input
-    uses_stdout = False    # the one block of a flow that writes data to the run's standard output
+    A block type declares itself in class attributes and is fed chunks by the
+    runtime, in a process of its own; it never sees sockets.
 
-    def __init__(self, params, context):
+    Attributes
+    ----------
+    type_name : str
+        The name flow files use (plain words, hyphenated), also the entry-point name.
+    summary : str
+        One line for ``bandloom blocks``.
+    parameters : tuple of Param
+        Declared parameters; the runtime checks and converts values before the block is made.
+    inputs, outputs : tuple of Port
+        Declared ports.
+    is_source : bool
+        True for blocks without inputs that ``produce`` chunks.
+
+    Notes
+    -----
+    Life cycle: ``__init__(params, context)`` (set every counter a report
+    reads here), ``output_streams`` (at check time and again at run time),
+    ``start``, then ``produce`` (sources) or ``consume`` / ``finish``, and
+    always ``close`` and ``report`` last, also after a failure.
+
+    Examples
+    --------
+    A block that halves its input, run by hand as the runtime would run it:
+
+    >>> class Half(Block):
+    ...     type_name = "half"
+    ...     summary = "Multiply by one half."
+    ...     inputs = (Port("samples", "samples", "IQ"),)
+    ...     outputs = (Port("samples", "samples", "IQ, halved"),)
+    ...     def output_streams(self, inputs):
+    ...         return {"samples": inputs["samples"]}
+    ...     def consume(self, port, chunk):
+    ...         return {"samples": [Chunk(chunk.data / 2, chunk.first_index)]}
+    >>> block = Half({}, BlockContext("half", Path("flow.toml"), Path(".")))
+    >>> out = block.consume("samples", Chunk(np.ones(3, np.complex64), first_index=0))
+    >>> out["samples"][0].data.real.tolist()
+    [0.5, 0.5, 0.5]
+    """
+
+    type_name: ClassVar[str] = ""
+    summary: ClassVar[str] = ""
+    parameters: ClassVar[tuple[Param, ...]] = ()
+    inputs: ClassVar[tuple[Port, ...]] = ()
+    outputs: ClassVar[tuple[Port, ...]] = ()
+    is_source: ClassVar[bool] = False
+    uses_stdin: ClassVar[bool] = False     # the one block of a flow that reads the run's standard input
+    uses_stdout: ClassVar[bool] = False    # the one block of a flow that writes data to the run's standard output
+
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
         self.params = params
         self.context = context
+        self._stopping = False
 
     # Check time and run time -------------------------------------------------
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         """Return ``{output port: StreamInfo}`` given ``{input port: StreamInfo}``.
 
         Raise :class:`BlockError` if the inputs are not acceptable (wrong rate,
@@ -253,56 +267,62 @@ class Block:
         return {}
 
     # Run time -----------------------------------------------------------------
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         """Open files and build state; ``inputs`` as for :meth:`output_streams`."""
 
-    def produce(self):
+    def produce(self) -> Output | None:
         """Sources: the next ``{port: [Chunk, ...]}``, or None at the end of the stream."""
         return None
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         """Take a chunk on an input port; return ``{output port: [Chunk, ...]}`` (may be empty)."""
         return {}
 
-    def finish(self):
+    def finish(self) -> Output:
         """All inputs have ended: return any last ``{port: [Chunk, ...]}``."""
         return {}
 
-    def close(self):
+    def close(self) -> None:
         """Always called last, also on abort: flush and close files."""
 
-    def report(self):
+    def report(self) -> list[str]:
         """Lines for the run summary (for example a measured error); default none."""
         return []
 
-    def progress(self):
+    def progress(self) -> tuple[int, int] | None:
         """Sources that know their length: (rows done, rows in all) for the status display; else None."""
         return None
 
-    def end_index(self, port):
+    def end_index(self, port: str) -> int | None:
         """The absolute index just after the stream's last row on output ``port``, when that is
         beyond the last chunk produced (a live source that dropped its final buffers, a
         channelizer that skipped frames of silence after a final gap); None otherwise. The end of
         stream then counts the difference as missing rows."""
         return None
 
-    def stop_requested(self):
+    def stop_requested(self) -> None:
         """Sources: the run is being stopped; end the stream at the next produce()."""
         self._stopping = True
 
     @property
-    def stopping(self):
-        return getattr(self, "_stopping", False)
+    def stopping(self) -> bool:
+        return self._stopping
+
+    # Helpers for block types ----------------------------------------------------
+    def open_output(self, text: str, mode: str = "wb", **options: Any) -> tuple[Path, IO[Any]]:
+        """Open the output file named by parameter text ``text`` (placeholders filled, relative to
+        the run's output folder), making its folder; return (path, open file)."""
+        path = self.context.output_path(text)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        return path, open(path, mode, **options)
+
+    def warn(self, message: str) -> None:
+        """One line on the run's stderr, naming this block."""
+        print(f"{self.context.name}: warning: {message}", file=sys.stderr)
 
     @classmethod
-    def find_param(cls, name):
-        for p in cls.parameters:
-            if p.name == name:
-                return p
-        return None
-
-    @classmethod
-    def find_port(cls, name, direction):
+    def find_port(cls, name: str, direction: str) -> Port | None:
+        """The declared ``input`` or ``output`` port called ``name``, or None."""
         for p in (cls.inputs if direction == "input" else cls.outputs):
             if p.name == name:
                 return p

@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import json
+from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockError, Param, Port
+from .block import Block, BlockContext, BlockError, Param, Port, StreamInfo
+
+__all__ = ["Compare"]
 from .dsp.verification import estimate_delay
 from .units import format_frequency
 
@@ -33,7 +36,13 @@ class Compare(Block):
                              f"{format_frequency(b.sample_rate)}", port="test")
         return {}
 
-    def start(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.ended = False
+        self.started = False
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
+        self.started = True
         hint = inputs["test"].design.get("round_trip_delay") if inputs["test"].design else None
         self.delay = self.params["delay"] if self.params["delay"] >= 0 else hint
         self.estimated = self.delay is None
@@ -59,9 +68,7 @@ class Compare(Block):
         self.held[port] -= n
 
     def consume(self, port, chunk):
-        data = chunk.data.astype(np.complex128)
-        if chunk.dropped:
-            data = np.concatenate([np.zeros(chunk.dropped, np.complex128), data])
+        data = chunk.with_gap_filled().astype(np.complex128)
         self.buffers[port].append(data)
         self.held[port] += len(data)
         self._advance()
@@ -114,13 +121,13 @@ class Compare(Block):
                 "threshold_db": self.params["threshold"], "pass": bool(error_db <= self.params["threshold"])}
 
     def close(self):
-        if getattr(self, "ended", False) and self.params["path"]:
+        if self.ended and self.params["path"]:
             path = self.context.output_path(self.params["path"])
             path.parent.mkdir(parents=True, exist_ok=True)
             path.write_text(json.dumps(self.figures(), indent=2) + "\n")
 
     def report(self):
-        if not hasattr(self, "count"):
+        if not self.started:
             return []
         f = self.figures()
         if f["error_db"] is None:

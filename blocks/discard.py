@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
-import time
+from typing import Any
 
-from .block import Block, Param, Port
+from .block import Block, BlockContext, Chunk, Output, Pacer, Param, Port, StreamInfo
+
+__all__ = ["Discard"]
 
 
 class Discard(Block):
@@ -14,23 +16,24 @@ class Discard(Block):
                         "slow consumer (0 = as fast as they come)", default=0.0, unit="Hz", minimum=0.0),)
     inputs = (Port("samples", "any", "any stream", sample_types=("cf32", "f32")),)
 
-    def start(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
         self.rows = 0
         self.gaps = 0
         self.missing = 0
-        self.started = time.monotonic()
+        self.pacer: Pacer | None = None
 
-    def consume(self, port, chunk):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
+        self.pacer = Pacer(self.params["rate_limit"]) if self.params["rate_limit"] else None
+
+    def consume(self, port: str, chunk: Chunk) -> Output:
         self.rows += chunk.count
         if chunk.dropped:
             self.gaps += 1
             self.missing += chunk.dropped
-        if self.params["rate_limit"]:
-            delay = self.started + self.rows / self.params["rate_limit"] - time.monotonic()
-            if delay > 0:
-                time.sleep(delay)
+        if self.pacer:
+            self.pacer.wait_until(self.rows)
         return {}
 
-    def report(self):
-        return [f"discarded {getattr(self, 'rows', 0)} samples; {getattr(self, 'gaps', 0)} gaps, "
-                f"{getattr(self, 'missing', 0)} samples missing"]
+    def report(self) -> list[str]:
+        return [f"discarded {self.rows} samples; {self.gaps} gaps, {self.missing} samples missing"]

@@ -1,45 +1,31 @@
-"""Raw IQ files: the reader (a source) and the writer (a sink).
+"""Raw IQ files with SigMF metadata: the reader (a source) and the writer (a sink).
 
-Sample formats (the names are the SigMF open standard's ``core:datatype``
-stems): ``cf32`` / ``cf64`` interleaved float I,Q; ``ci16`` / ``ci8``
-interleaved signed integers, scaled by 1/32768 and 1/128 to full scale 1.0;
-``cu8`` unsigned 8-bit as delivered by low-cost receivers, (v - 127.5) / 127.5
-[common practice]. Byte order little-endian unless ``byte_order = "big"``.
+Sample formats and their scales are those of :mod:`.sample_formats`
+(cf32, cf64, ci16, ci8, cu8; little-endian unless ``byte_order = "big"``).
 """
 
 from __future__ import annotations
 
-import datetime
 import json
 import re
-import sys
-import time
 from pathlib import Path
+from typing import IO, Any
 
-import numpy as np
+from .block import Block, BlockContext, BlockError, Chunk, Output, Pacer, Param, Port, StreamInfo
+from .sample_formats import COMPLEX_FORMATS, FORMATS
 
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
-
-FORMATS = {
-    # name: (numpy scalar type of one component, scale, offset)
-    "cf32": (np.float32, 1.0, 0.0),
-    "cf64": (np.float64, 1.0, 0.0),
-    "ci16": (np.int16, 1 / 32768, 0.0),
-    "ci8": (np.int8, 1 / 128, 0.0),
-    "cu8": (np.uint8, 1 / 127.5, -127.5),
-}
-
+__all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
 
 SIGMF_VERSION = "1.2.0"
 
 
-def sigmf_meta_path(data_path):
+def sigmf_meta_path(data_path: str | Path) -> Path:
     """Where the SigMF metadata of ``data_path`` lives: same name, suffix .sigmf-meta."""
     data_path = Path(data_path)
     return data_path.with_suffix(".sigmf-meta")
 
 
-def read_sigmf(meta_path):
+def read_sigmf(meta_path: Path) -> tuple[str, str, Any, Any, Any]:
     """(format, byte_order, sample_rate, frequency, datetime) from a SigMF metadata file.
 
     Field names from the SigMF specification (global core:datatype,
@@ -61,7 +47,8 @@ def read_sigmf(meta_path):
             capture.get("core:frequency"), capture.get("core:datetime"))
 
 
-def write_sigmf(data_path, *, datatype, sample_rate, frequency, start_time, description, gaps=()):
+def write_sigmf(data_path: Path, *, datatype: str, sample_rate: float, frequency: float, start_time: str | None,
+                description: str, gaps: list[tuple[int, int]] | tuple = ()) -> Path:
     meta = {
         "global": {"core:datatype": datatype, "core:sample_rate": float(sample_rate),
                    "core:version": SIGMF_VERSION, "core:num_channels": 1,
@@ -76,23 +63,6 @@ def write_sigmf(data_path, *, datatype, sample_rate, frequency, start_time, desc
     return path
 
 
-def component_dtype(sample_format, byte_order):
-    base = np.dtype(FORMATS[sample_format][0])
-    return base.newbyteorder("<" if byte_order == "little" else ">") if base.itemsize > 1 else base
-
-
-def decode_iq(raw, sample_format, byte_order="little"):
-    """Bytes (or an array of components) of ``sample_format`` to complex64, full scale 1.0."""
-    kind, scale, offset = FORMATS[sample_format]
-    components = np.frombuffer(raw, dtype=component_dtype(sample_format, byte_order))
-    values = components.astype(np.float32)
-    if offset:
-        values += np.float32(offset)
-    if scale != 1.0:
-        values *= np.float32(scale)
-    return values.view(np.complex64) if values.dtype == np.float32 else values.astype(np.float32).view(np.complex64)
-
-
 class IQReader(Block):
     type_name = "iq-reader"
     summary = "Read raw interleaved IQ samples from a file (cf32, cf64, ci16, ci8, cu8)."
@@ -103,7 +73,7 @@ class IQReader(Block):
               "SigMF file beside the data (NAME.sigmf-meta); 'auto' does so when one is there", default="auto",
               choices=("auto", "sigmf", "none")),
         Param("format", "choice", "sample format (default cf32, or the metadata's)", default=None,
-              choices=tuple(FORMATS)),
+              choices=COMPLEX_FORMATS),
         Param("byte_order", "choice", "byte order of multi-byte formats (default little, or the metadata's)",
               default=None, choices=("little", "big")),
         Param("sample_rate", "quantity", "sample rate of the recording (default: the metadata's)", default=None,
@@ -121,7 +91,13 @@ class IQReader(Block):
     )
     outputs = (Port("samples", "samples", "IQ samples, full scale 1.0"),)
 
-    def _settings(self):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.file: IO[bytes] | None = None
+        self.index = 0               # absolute index of the next sample sent
+        self.count = 0
+
+    def _settings(self) -> tuple[str, str, float, float, str | None]:
         """Format, byte order, rate, centre and start time: the flow's values, else the metadata's."""
         path = self.context.input_path(self.params["path"])
         meta_path = sigmf_meta_path(path)
@@ -140,7 +116,7 @@ class IQReader(Block):
         centre = centre if centre is not None else (meta[3] or 0.0)
         return fmt, order, float(rate), float(centre), meta[4]
 
-    def _geometry(self):
+    def _geometry(self) -> tuple[Path, int, int, int, int]:
         path = self.context.input_path(self.params["path"])
         fmt, order, rate, centre, when = self._settings()
         try:
@@ -148,7 +124,7 @@ class IQReader(Block):
         except OSError as error:
             relative = "" if Path(self.params["path"]).is_absolute() else " (paths are relative to the flow file's folder)"
             raise BlockError(f"cannot read {path}: {error.strerror}{relative}", param="path") from None
-        sample_bytes = 2 * np.dtype(FORMATS[fmt][0]).itemsize
+        sample_bytes = FORMATS[fmt].bytes_per_sample
         tail = size % sample_bytes
         if tail and self.params["trailing_bytes"] == "error":
             raise BlockError(f"{path} holds {size} bytes, not a whole number of {sample_bytes}-byte {fmt} "
@@ -164,25 +140,25 @@ class IQReader(Block):
             count = min(count, int(round(self.params["duration"] * rate)))
         return path, sample_bytes, tail, first, count
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         self._geometry()
         fmt, order, rate, centre, when = self._settings()
         return {"samples": StreamInfo("samples", "cf32", rate, centre, start_time=when)}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         path, self.sample_bytes, tail, self.first, self.count = self._geometry()
-        self.format, self.byte_order, self.rate, _, _ = self._settings()
+        name, self.byte_order, rate, _, _ = self._settings()
+        self.format = FORMATS[name]
         if tail:
-            print(f"{self.context.name}: warning: dropping the last {tail} bytes of {path} "
-                  f"(a partial sample)", file=sys.stderr)
+            self.warn(f"dropping the last {tail} bytes of {path} (a partial sample)")
         self.file = open(path, "rb")
         self.file.seek(self.first * self.sample_bytes)
         self.position = 0            # samples delivered from the selection, this pass
         self.passes_left = self.params["repeat"]
-        self.index = 0               # absolute index of the next sample sent
-        self.started = time.monotonic()
+        self.pacer = Pacer(rate) if self.params["pace"] else None
 
-    def produce(self):
+    def produce(self) -> Output | None:
+        assert self.file is not None
         if self.stopping:
             return None
         if self.position >= self.count:
@@ -196,22 +172,19 @@ class IQReader(Block):
         n = len(raw) // self.sample_bytes
         if n == 0:
             return None
-        data = decode_iq(raw[:n * self.sample_bytes], self.format, self.byte_order)
+        data = self.format.decode(raw[:n * self.sample_bytes], self.byte_order)
         chunk = Chunk(data, self.index)
         self.position += n
         self.index += n
-        if self.params["pace"]:
-            due = self.started + self.index / self.rate
-            delay = due - time.monotonic()
-            if delay > 0:
-                time.sleep(delay)
+        if self.pacer:
+            self.pacer.wait_until(self.index)
         return {"samples": [chunk]}
 
-    def progress(self):
+    def progress(self) -> tuple[int, int]:
         return self.index, self.count * self.params["repeat"]
 
-    def close(self):
-        if getattr(self, "file", None):
+    def close(self) -> None:
+        if self.file:
             self.file.close()
 
 
@@ -227,42 +200,39 @@ class IQWriter(Block):
     )
     inputs = (Port("samples", "samples", "IQ samples"),)
 
-    def output_streams(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.file: IO[bytes] | None = None
+        self.path: Path | None = None
+        self.gaps: list[tuple[int, int]] = []
+        self.written = 0
+        self.zero_filled = 0
+
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         path = self.params["path"]
         if self.params["metadata"] and path.endswith(".sigmf-meta"):
             raise BlockError("path ends in .sigmf-meta, the name the metadata file takes; name the data "
                              "NAME.sigmf-data", param="path")
         return {}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.stream = inputs["samples"]
-        self.gaps = []
-        self.path = self.context.output_path(self.params["path"])
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        self.file = open(self.path, "wb")
-        self.written = 0
-        self.zero_filled = 0
+        self.format = FORMATS[self.params["format"]]
+        self.path, self.file = self.open_output(self.params["path"])
 
-    def _write(self, data):
-        if self.params["format"] == "ci16":
-            pairs = np.clip(np.round(data.view(np.float32) * 32768), -32768, 32767).astype("<i2")
-            pairs.tofile(self.file)
-        else:
-            np.asarray(data, dtype="<c8").tofile(self.file)
-
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
+        assert self.file is not None
         if chunk.dropped:
             # A raw file has no way to mark a gap: keep absolute time with zeros
             # (and say so in the metadata's annotations).
             self.gaps.append((self.written + self.zero_filled, chunk.dropped))
-            self._write(np.zeros(chunk.dropped, dtype=np.complex64))
             self.zero_filled += chunk.dropped
-        self._write(chunk.data)
+        self.format.encode(chunk.with_gap_filled()).tofile(self.file)
         self.written += chunk.count
         return {}
 
-    def close(self):
-        if getattr(self, "file", None):
+    def close(self) -> None:
+        if self.file and self.path:
             self.file.flush()
             self.file.close()
             if self.params["metadata"]:
@@ -273,6 +243,6 @@ class IQWriter(Block):
                             description=f"{what}written by bandloom block '{self.context.name}' of flow "
                                         f"{self.context.flow_path}")
 
-    def report(self):
-        gaps = f", {self.zero_filled} zero-filled for gaps" if getattr(self, "zero_filled", 0) else ""
-        return [f"wrote {getattr(self, 'written', 0)} samples to {getattr(self, 'path', '?')}{gaps}"]
+    def report(self) -> list[str]:
+        gaps = f", {self.zero_filled} zero-filled for gaps" if self.zero_filled else ""
+        return [f"wrote {self.written} samples to {self.path or '?'}{gaps}"]

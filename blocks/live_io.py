@@ -15,14 +15,17 @@ import socket
 import sys
 import threading
 import time
+from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
-from .iq_files import FORMATS, decode_iq
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .sample_formats import COMPLEX_FORMATS, FORMATS
+
+__all__ = ["StdinReader", "StdoutWriter", "UDPReader"]
 
 LIVE_PARAMS = (
-    Param("format", "choice", "sample format", default="cf32", choices=tuple(FORMATS)),
+    Param("format", "choice", "sample format", default="cf32", choices=COMPLEX_FORMATS),
     Param("byte_order", "choice", "byte order of multi-byte formats", default="little", choices=("little", "big")),
     Param("sample_rate", "quantity", "sample rate of the stream", unit="Hz", minimum=1e-9),
     Param("centre_frequency", "quantity", "RF frequency at 0 Hz", default=0.0, unit="Hz"),
@@ -35,21 +38,28 @@ class _LiveSource(Block):
     is_source = True
     outputs = (Port("samples", "samples", "IQ samples, full scale 1.0"),)
 
-    def output_streams(self, inputs):
-        return {"samples": StreamInfo("samples", "cf32", self.params["sample_rate"], self.params["centre_frequency"])}
-
-    def start(self, inputs):
-        self.sample_bytes = 2 * np.dtype(FORMATS[self.params["format"]][0]).itemsize
-        self.buffers = queue.Queue(maxsize=self.params["queue"])
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.format = FORMATS[params["format"]]
+        self.sample_bytes = self.format.bytes_per_sample
         self.next_index = 0          # absolute index of the next sample read (reader thread)
         self.dropped_samples = 0
         self.dropped_buffers = 0
         self.received = 0
         self.ended = threading.Event()
+
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
+        return {"samples": StreamInfo("samples", "cf32", self.params["sample_rate"], self.params["centre_frequency"])}
+
+    def _read_loop(self) -> None:
+        raise NotImplementedError
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
+        self.buffers: queue.Queue[tuple[int, bytes]] = queue.Queue(maxsize=self.params["queue"])
         self.thread = threading.Thread(target=self._read_loop, daemon=True)
         self.thread.start()
 
-    def _offer(self, raw):
+    def _offer(self, raw: bytes) -> None:
         n = len(raw) // self.sample_bytes
         if n == 0:
             return
@@ -61,7 +71,7 @@ class _LiveSource(Block):
             self.dropped_samples += n
             self.dropped_buffers += 1
 
-    def produce(self):
+    def produce(self) -> Output | None:
         while True:
             try:
                 index, raw = self.buffers.get(timeout=0.1)
@@ -69,16 +79,16 @@ class _LiveSource(Block):
                 if self.stopping or (self.ended.is_set() and self.buffers.empty()):
                     return None
                 return {}
-            data = decode_iq(raw, self.params["format"], self.params["byte_order"])
+            data = self.format.decode(raw, self.params["byte_order"])
             self.received += len(data)
             return {"samples": [Chunk(data, index)]}
 
-    def end_index(self, port):
+    def end_index(self, port: str) -> int:
         return self.next_index
 
-    def report(self):
-        return [f"took {getattr(self, 'received', 0)} samples; dropped {getattr(self, 'dropped_samples', 0)} "
-                f"samples in {getattr(self, 'dropped_buffers', 0)} buffers because downstream was busy"]
+    def report(self) -> list[str]:
+        return [f"took {self.received} samples; dropped {self.dropped_samples} "
+                f"samples in {self.dropped_buffers} buffers because downstream was busy"]
 
 
 class StdinReader(_LiveSource):
@@ -89,7 +99,7 @@ class StdinReader(_LiveSource):
         Param("buffer_size", "int", "samples per buffer read", default=16384, minimum=1, maximum=1 << 22),
     )
 
-    def _read_loop(self):
+    def _read_loop(self) -> None:
         size = self.params["buffer_size"] * self.sample_bytes
         stream = sys.stdin.buffer
         leftover = b""
@@ -117,7 +127,11 @@ class UDPReader(_LiveSource):
               "the first one (0 = never)", default=0.0, unit="s", minimum=0.0),
     )
 
-    def start(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.sock: socket.socket | None = None
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.sock = socket.socket(socket.AF_INET6 if ":" in self.params["address"] else socket.AF_INET,
                                   socket.SOCK_DGRAM)
         self.sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 1 << 22)
@@ -129,7 +143,8 @@ class UDPReader(_LiveSource):
         self.sock.settimeout(0.2)
         super().start(inputs)
 
-    def _read_loop(self):
+    def _read_loop(self) -> None:
+        assert self.sock is not None
         skip = self.params["header_bytes"]
         idle = self.params["idle_timeout"]
         last = None
@@ -146,8 +161,8 @@ class UDPReader(_LiveSource):
         finally:
             self.ended.set()
 
-    def close(self):
-        if getattr(self, "sock", None):
+    def close(self) -> None:
+        if self.sock:
             self.sock.close()
 
 
@@ -159,27 +174,28 @@ class StdoutWriter(Block):
                         choices=("native", "cf32", "ci16", "f32", "s16")),)
     inputs = (Port("samples", "samples", "IQ or audio", sample_types=("cf32", "f32")),)
 
-    def output_streams(self, inputs):
-        kind = inputs["samples"].sample_type
-        fmt = self.params["format"]
-        if fmt in ("cf32", "ci16") and kind != "cf32" or fmt in ("f32", "s16") and kind != "f32":
-            raise BlockError(f"format = \"{fmt}\" does not fit a {kind} stream", param="format")
-        return {}
-
-    def start(self, inputs):
-        self.fd = sys.stdout.fileno()
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
         self.written = 0
         self.closed_pipe = False
 
-    def consume(self, port, chunk):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
+        kind = inputs["samples"].sample_type
+        fmt = self.params["format"]
+        if fmt != "native" and FORMATS[fmt].sample_type != kind:
+            raise BlockError(f"format = \"{fmt}\" does not fit a {kind} stream", param="format")
+        return {}
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
+        self.fd = sys.stdout.fileno()
+        self.format = FORMATS[inputs["samples"].sample_type if self.params["format"] == "native"
+                              else self.params["format"]]
+
+    def consume(self, port: str, chunk: Chunk) -> Output:
         if self.closed_pipe:
             return {}
-        data = chunk.data
-        if chunk.dropped:
-            data = np.concatenate([np.zeros(chunk.dropped, data.dtype), data])
-        if self.params["format"] in ("ci16", "s16"):
-            data = np.clip(np.round(data.view(np.float32) * 32768), -32768, 32767).astype("<i2")
-        view = memoryview(np.ascontiguousarray(data)).cast("B")
+        data = self.format.encode(chunk.with_gap_filled())
+        view = memoryview(data).cast("B")
         try:
             while len(view):
                 done = os.write(self.fd, view)
@@ -190,6 +206,6 @@ class StdoutWriter(Block):
         self.written += chunk.count
         return {}
 
-    def report(self):
-        note = "; the reading program closed the pipe early" if getattr(self, "closed_pipe", False) else ""
-        return [f"wrote {getattr(self, 'written', 0)} samples to standard output{note}"]
+    def report(self) -> list[str]:
+        note = "; the reading program closed the pipe early" if self.closed_pipe else ""
+        return [f"wrote {self.written} samples to standard output{note}"]

@@ -4,11 +4,16 @@ from __future__ import annotations
 
 import csv
 import json
+from pathlib import Path
+from typing import IO, Any
 
 import numpy as np
 
-from .block import Block, BlockError, Param, Port
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+
+__all__ = ["Activity", "Waterfall"]
 from .dsp.activity import ActivityDetector
+from .dsp.errors import ParameterError
 from .units import format_frequency
 
 DETECTOR_PARAMS = (
@@ -27,9 +32,11 @@ def _detector(params, stream, keep_levels=False):
         return ActivityDetector(stream.width, stream.sample_rate, interval=params["interval"],
                                 threshold=params["threshold"], hysteresis=params["hysteresis"],
                                 min_duration=params["min_duration"], keep_levels=keep_levels)
-    except ValueError:
-        raise BlockError(f"hysteresis = {params['hysteresis']:g} dB must be less than threshold = "
-                         f"{params['threshold']:g} dB", param="hysteresis") from None
+    except ParameterError as error:
+        if error.param == "hysteresis":
+            raise BlockError(f"hysteresis = {params['hysteresis']:g} dB must be less than threshold = "
+                             f"{params['threshold']:g} dB", param="hysteresis") from None
+        raise BlockError(str(error), param=error.param) from None
 
 
 def _channel_labels(stream):
@@ -54,18 +61,21 @@ class Activity(Block):
         _detector(self.params, inputs["channels"])
         return {}
 
-    def start(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.file: IO[str] | None = None
+        self.detector: ActivityDetector | None = None
+        self.events = 0
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         stream = inputs["channels"]
         self.detector = _detector(self.params, stream)
         self.channels, self.frequencies = _channel_labels(stream)
-        self.path = self.context.output_path(self.params["path"])
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        self.file = open(self.path, "w", newline="")
+        self.path, self.file = self.open_output(self.params["path"], "w", newline="")
         self.jsonl = self.path.suffix == ".jsonl"
         if not self.jsonl:
             self.writer = csv.writer(self.file)
             self.writer.writerow(["time_s", "channel", "frequency_hz", "level_dbfs", "event"])
-        self.events = 0
 
     def _write(self, events):
         for e in events:
@@ -86,12 +96,12 @@ class Activity(Block):
         self._write(self.detector.finish())
         return {}
 
-    def close(self):
-        if getattr(self, "file", None):
+    def close(self) -> None:
+        if self.file:
             self.file.close()
 
-    def report(self):
-        if not hasattr(self, "detector"):
+    def report(self) -> list[str]:
+        if self.detector is None:
             return []
         summary = self.detector.summary()
         lines = [f"{self.events} events in {self.path}; noise floor {self.detector.floor_db:.1f} dBFS "
@@ -133,7 +143,12 @@ class Waterfall(Block):
             _detector(self.params, inputs["channels"])
         return {}
 
-    def start(self, inputs):
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.rows: list[np.ndarray] = []
+        self.path: Path | None = None
+
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.stream = inputs["samples"]
         self.channel_stream = inputs.get("channels")
         self.detector = _detector(self.params, self.channel_stream, keep_levels=True) \
@@ -142,7 +157,6 @@ class Waterfall(Block):
         self.window = np.hanning(n).astype(np.float32)
         self.pending = np.zeros(0, np.complex64)
         self.segments_per_row = 1
-        self.rows = []
         self.row_acc = np.zeros(n)
         self.row_count = 0
         self.total = 0
@@ -176,8 +190,8 @@ class Waterfall(Block):
         self.total += chunk.count
         return {}
 
-    def close(self):
-        if not getattr(self, "rows", None):
+    def close(self) -> None:
+        if not self.rows:
             return
         import matplotlib
         matplotlib.use("Agg")
@@ -226,5 +240,5 @@ class Waterfall(Block):
         fig.savefig(self.path)
         plt.close(fig)
 
-    def report(self):
-        return [f"drew {len(getattr(self, 'rows', []))} rows to {getattr(self, 'path', '?')}"]
+    def report(self) -> list[str]:
+        return [f"drew {len(self.rows)} rows to {self.path or '?'}"]

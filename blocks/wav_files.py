@@ -3,11 +3,16 @@
 from __future__ import annotations
 
 import wave
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .sample_formats import FORMATS
 from .units import format_frequency
+
+__all__ = ["WavReader", "WavWriter"]
 
 _SCALE = {np.dtype(np.int16): 1 / 32768, np.dtype(np.int32): 1 / 2147483648, np.dtype(np.uint8): 1 / 128,
           np.dtype(np.float32): 1.0, np.dtype(np.float64): 1.0}
@@ -78,36 +83,36 @@ class WavWriter(Block):
                              f"{format_frequency(rate)}; put a resample block before it", port="audio")
         return {}
 
-    def start(self, inputs):
-        stream = inputs["audio"]
-        self.stereo = stream.sample_type == "cf32"
-        self.path = self.context.output_path(self.params["path"])
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        self.file = wave.open(str(self.path), "wb")
-        self.file.setnchannels(2 if self.stereo else 1)
-        self.file.setsampwidth(2)
-        self.file.setframerate(int(round(stream.sample_rate)))
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.file: wave.Wave_write | None = None
+        self.path: Path | None = None
         self.frames = 0
         self.clipped = 0
 
-    def _pcm(self, values):
-        values = values * self.params["gain"]
-        self.clipped += int(np.count_nonzero(np.abs(values) > 1.0))
-        return np.clip(np.round(values * 32767), -32768, 32767).astype("<i2")
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
+        stream = inputs["audio"]
+        self.stereo = stream.sample_type == "cf32"
+        self.pcm = FORMATS["ci16" if self.stereo else "s16"]
+        self.path, self.raw = self.open_output(self.params["path"])
+        self.file = wave.open(self.raw, "wb")
+        self.file.setnchannels(2 if self.stereo else 1)
+        self.file.setsampwidth(2)
+        self.file.setframerate(int(round(stream.sample_rate)))
 
-    def consume(self, port, chunk):
-        data = chunk.data
-        if chunk.dropped:
-            data = np.concatenate([np.zeros(chunk.dropped, data.dtype), data])
-        pcm = self._pcm(data.view(np.float32) if self.stereo else data)
-        self.file.writeframes(pcm.tobytes())
+    def consume(self, port: str, chunk: Chunk) -> Output:
+        assert self.file is not None
+        data = chunk.with_gap_filled() * self.params["gain"]
+        self.clipped += int(np.count_nonzero(np.abs(data.view(np.float32) if self.stereo else data) > 1.0))
+        self.file.writeframes(self.pcm.encode(data).tobytes())
         self.frames += len(data)
         return {}
 
-    def close(self):
-        if getattr(self, "file", None):
-            self.file.close()
+    def close(self) -> None:
+        if self.file:
+            self.file.close()       # writes the final sizes into the header
+            self.raw.close()
 
-    def report(self):
-        clipped = f", {self.clipped} values clipped" if getattr(self, "clipped", 0) else ""
-        return [f"wrote {getattr(self, 'frames', 0)} frames to {getattr(self, 'path', '?')}{clipped}"]
+    def report(self) -> list[str]:
+        clipped = f", {self.clipped} values clipped" if self.clipped else ""
+        return [f"wrote {self.frames} frames to {self.path or '?'}{clipped}"]

@@ -16,6 +16,8 @@ off after ``min_duration`` of consecutive *below* intervals.
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from collections import deque
 from dataclasses import dataclass
 
@@ -37,8 +39,12 @@ def _db(power):
 class ActivityDetector:
     def __init__(self, columns, rate, *, interval=0.05, threshold=10.0, hysteresis=4.0, min_duration=0.1,
                  floor_history=20, keep_levels=False):
-        if interval <= 0 or threshold <= 0 or hysteresis < 0 or hysteresis >= threshold:
-            raise ValueError("need interval > 0, threshold > 0 and 0 <= hysteresis < threshold!")
+        for name, value in (("interval", interval), ("threshold", threshold)):
+            if not value > 0:
+                raise ParameterError(f"Parameter {name}={value!r} is not > 0!", param=name)
+        if not 0 <= hysteresis < threshold:
+            raise ParameterError(f"Parameter {hysteresis=} is not >= 0 and < threshold={threshold}!",
+                                 param="hysteresis")
         self.columns = int(columns)
         self.rate = float(rate)
         self.rows_per_interval = max(1, int(round(interval * rate)))

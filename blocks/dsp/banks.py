@@ -38,6 +38,8 @@ frame, then a weighted periodic overlap-add. The hot loops run in numba
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 import numpy as np
 import scipy.fft
 
@@ -54,32 +56,32 @@ def _load_kernel(name):
 
 def _check_geometry(channels, step, step_name):
     if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
-        raise ValueError(f"Parameter channels={channels!r} is not an integer >= 2!")
+        raise ParameterError(f"Parameter channels={channels!r} is not an integer >= 2!", param="channels")
     if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 1:
-        raise ValueError(f"Parameter {step_name}={step!r} is not an integer >= 1!")
+        raise ParameterError(f"Parameter {step_name}={step!r} is not an integer >= 1!", param=step_name)
     if channels % step:
-        raise ValueError(
+        raise ParameterError(
             f"Parameter {step_name}={step} does not divide channels={channels}; "
-            f"choose one of {[d for d in range(1, channels + 1) if channels % d == 0]}!")
+            f"choose one of {[d for d in range(1, channels + 1) if channels % d == 0]}!", param=step_name)
     return int(channels), int(step)
 
 
 def _check_taps(taps):
     array = np.asarray(taps)
     if array.ndim != 1 or array.size == 0:
-        raise ValueError(f"Parameter taps must be a non-empty 1-D array, got shape {array.shape}!")
+        raise ParameterError(f"Parameter taps must be a non-empty 1-D array, got shape {array.shape}!", param="taps")
     if np.iscomplexobj(array):
-        raise ValueError("Parameter taps must be real; complex prototypes are not supported!")
+        raise ParameterError("Parameter taps must be real; complex prototypes are not supported!", param="taps")
     array = array.astype(np.float64)
     if not np.all(np.isfinite(array)):
-        raise ValueError("Parameter taps contains NaN or infinity!")
+        raise ParameterError("Parameter taps contains NaN or infinity!", param="taps")
     array.flags.writeable = False
     return array
 
 
 def _check_kernel(kernel):
     if kernel not in _KERNEL_MODULES:
-        raise ValueError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNEL_MODULES)}!")
+        raise ParameterError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNEL_MODULES)}!", param="kernel")
     return kernel
 
 
@@ -131,7 +133,7 @@ class AnalysisBank:
         """Take the next chunk of input; return the frames it completes, shape ``(F, M)``."""
         x = np.asarray(x)
         if x.ndim != 1:
-            raise ValueError(f"process() takes a 1-D chunk of samples, got shape {x.shape}!")
+            raise ParameterError(f"process() takes a 1-D chunk of samples, got shape {x.shape}!", param="x")
         M, D, L = self._channels, self._decimation, len(self._taps)
         x = np.ascontiguousarray(x, dtype=np.complex64)
         before = self._consumed                      # absolute index of x[0]
@@ -168,7 +170,7 @@ class AnalysisBank:
         """
         L = len(self._taps)
         if count < 0:
-            raise ValueError(f"Parameter {count=} is negative!")
+            raise ParameterError(f"Parameter {count=} is negative!", param="count")
         head = min(count, L - 1 + self._decimation)
         frames = self.process(np.zeros(head, dtype=np.complex64))
         rest = count - head
@@ -219,7 +221,7 @@ class SynthesisBank:
         frames = np.asarray(frames)
         M, D, L = self._channels, self._interpolation, len(self._taps)
         if frames.ndim != 2 or frames.shape[1] != M:
-            raise ValueError(f"process() takes frames of shape (F, {M}), got shape {frames.shape}!")
+            raise ParameterError(f"process() takes frames of shape (F, {M}), got shape {frames.shape}!", param="frames")
         count = len(frames)
         if count == 0:
             return np.zeros(0, dtype=np.complex64)
@@ -240,7 +242,7 @@ class SynthesisBank:
         ``frames_consumed * D`` tells the absolute index after the call.
         """
         if count < 0:
-            raise ValueError(f"Parameter {count=} is negative!")
+            raise ParameterError(f"Parameter {count=} is negative!", param="count")
         M, D, L = self._channels, self._interpolation, len(self._taps)
         head = min(count, -(-L // D))
         out = self.process(np.zeros((head, M), dtype=np.complex64))

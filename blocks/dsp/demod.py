@@ -23,11 +23,20 @@ from __future__ import annotations
 import numpy as np
 import scipy.signal
 
+from .errors import ParameterError
+
+
+def _check_demod_numbers(**values: float) -> None:
+    for name, value in values.items():
+        if not value > 0:
+            raise ParameterError(f"Parameter {name}={value!r} is not > 0!", param=name)
+
 
 class FMDemodulator:
     def __init__(self, rate, *, full_scale=5000.0, deemphasis=0.0, squelch=None, squelch_time=0.002):
-        if rate <= 0 or full_scale <= 0 or deemphasis < 0:
-            raise ValueError("rate and full_scale must be > 0 and deemphasis >= 0!")
+        _check_demod_numbers(rate=rate, full_scale=full_scale)
+        if not deemphasis >= 0:
+            raise ParameterError(f"Parameter {deemphasis=} is not >= 0!", param="deemphasis")
         self.rate = float(rate)
         self.scale = self.rate / (2 * np.pi * full_scale)
         self.previous = np.complex64(0)

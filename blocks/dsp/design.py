@@ -36,6 +36,8 @@ is exactly 1: ``g[t] = c * h[delay - t]``.
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from dataclasses import dataclass, field
 from functools import cached_property
 
@@ -82,7 +84,7 @@ def _window(window, length, stopband_db):
     try:
         return scipy.signal.get_window(window, length, fftbins=False)
     except ValueError as error:
-        raise ValueError(f"Parameter window={window!r} is not a window scipy.signal.get_window knows: {error}") from error
+        raise ParameterError(f"Parameter window={window!r} is not a window scipy.signal.get_window knows: {error}", param="window") from error
 
 
 @dataclass(frozen=True)
@@ -165,11 +167,11 @@ class BankDesign:
 
 def _validate_number(name, value, low, high, *, integer=False):
     if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
-        raise ValueError(f"Parameter {name}={value!r} is not a number!")
+        raise ParameterError(f"Parameter {name}={value!r} is not a number!", param=name)
     if integer and int(value) != value:
-        raise ValueError(f"Parameter {name}={value!r} is not a whole number!")
+        raise ParameterError(f"Parameter {name}={value!r} is not a whole number!", param=name)
     if not low <= value <= high:
-        raise ValueError(f"Parameter {name}={value!r} is outside {low} .. {high}!")
+        raise ParameterError(f"Parameter {name}={value!r} is outside {low} .. {high}!", param=name)
     return int(value) if integer else float(value)
 
 
@@ -185,26 +187,26 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
     branch, Kaiser window for 90 dB.
     """
     if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
-        raise ValueError(f"Parameter channels={channels!r} is not an integer >= 2!")
+        raise ParameterError(f"Parameter channels={channels!r} is not an integer >= 2!", param="channels")
     if decimation is not None and oversample is not None:
-        raise ValueError("Give decimation or oversample, not both!")
+        raise ParameterError("Give decimation or oversample, not both!", param="decimation")
     if decimation is None:
         oversample = 2 if oversample is None else oversample
         _validate_number("oversample", oversample, 1, channels, integer=True)
         if channels % int(oversample):
-            raise ValueError(f"Parameter oversample={oversample} does not divide channels={channels}!")
+            raise ParameterError(f"Parameter oversample={oversample} does not divide channels={channels}!", param="oversample")
         decimation = channels // int(oversample)
     M, D = _check_geometry(channels, decimation, "decimation")
     p = M // D
     if shape is None:
         shape = "root-raised-cosine" if p >= 2 else "low-pass"
     if shape not in SHAPES:
-        raise ValueError(f"Parameter shape={shape!r} is not one of {list(SHAPES)}!")
+        raise ParameterError(f"Parameter shape={shape!r} is not one of {list(SHAPES)}!", param="shape")
 
     if shape != "root-raised-cosine":
         for name, value in (("rolloff", rolloff), ("tight_margin", tight_margin)):
             if value is not None:
-                raise ValueError(f"Parameter {name}={value!r} applies to shape='root-raised-cosine' only!")
+                raise ParameterError(f"Parameter {name}={value!r} applies to shape='root-raised-cosine' only!", param=name)
     if shape == "rectangle":
         taps = np.full(M, 1.0 / M)
         return _matched(M, D, shape, "rectangle", 1, None, None, False, taps)
@@ -233,7 +235,7 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
     att = _validate_number("stopband_db", DEFAULT_CRITICAL_STOPBAND_DB if stopband_db is None
                            else stopband_db, 20, 200)
     if tight:
-        raise ValueError("Parameter tight=True needs shape='root-raised-cosine'!")
+        raise ParameterError("Parameter tight=True needs shape='root-raised-cosine'!", param="tight")
     import scipy.signal
 
     length = R * M + 1

@@ -10,6 +10,8 @@ figures are the classic window figures of merit (Harris, Proc. IEEE 66(1),
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -121,9 +123,9 @@ def response_figures(taps, channels, *, passband_edge=0.25, points_per_channel=6
     """
     taps = np.asarray(taps)
     if taps.ndim != 1 or len(taps) == 0:
-        raise ValueError(f"Parameter taps must be a non-empty 1-D array, got shape {taps.shape}!")
+        raise ParameterError(f"Parameter taps must be a non-empty 1-D array, got shape {taps.shape}!", param="taps")
     if abs(taps.sum()) == 0:
-        raise ValueError("Parameter taps sums to zero: there is no passband to measure against!")
+        raise ParameterError("Parameter taps sums to zero: there is no passband to measure against!", param="taps")
     offsets, response = frequency_response(taps, channels, points_per_channel=points_per_channel)
     level = _to_db(np.abs(response))
     far = np.abs(offsets)

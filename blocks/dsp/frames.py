@@ -26,6 +26,8 @@ window ``Z / sqrt(sigma)``. ``theta`` is sampled on a uniform grid of
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -49,7 +51,7 @@ def zak_transform(window, channels, *, grid=None):
     rows = _branches(window, channels)
     grid = grid or _default_grid(len(rows))
     if grid < len(rows):
-        raise ValueError(f"Parameter {grid=} is smaller than the {len(rows)} taps per branch!")
+        raise ParameterError(f"Parameter {grid=} is smaller than the {len(rows)} taps per branch!", param="grid")
     return np.fft.fft(rows, n=grid, axis=0).T
 
 
@@ -131,7 +133,7 @@ def round_trip_transfer(analysis_taps, synthesis_taps, channels, decimation, del
     g = np.asarray(synthesis_taps, dtype=np.float64)
     M, D = channels, decimation
     if delay % M:
-        raise ValueError(f"Parameter {delay=} is not a multiple of channels={M}!")
+        raise ParameterError(f"Parameter {delay=} is not a multiple of channels={M}!", param="delay")
     p = M // D
     # Polyphase: t = r + a*D indexes g, and l*M - t = (l*p - a)*D - r indexes h.
     a_count = -(-len(g) // D)
@@ -154,7 +156,7 @@ def round_trip_transfer(analysis_taps, synthesis_taps, channels, decimation, del
     transfer = M * conv[:, ::p]                            # index l*p for l = 0, 1, ...
     lag = delay // M
     if lag >= transfer.shape[1]:
-        raise ValueError(f"Parameter {delay=} is beyond the taps' reach!")
+        raise ParameterError(f"Parameter {delay=} is beyond the taps' reach!", param="delay")
     gain = complex(transfer[:, lag].mean())
     ideal = np.zeros_like(transfer)
     ideal[:, lag] = 1.0

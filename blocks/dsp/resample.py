@@ -15,6 +15,8 @@ path.
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from math import gcd
 
 import numpy as np
@@ -39,8 +41,9 @@ class Resampler:
     """Streaming ``up/down`` resampler, complex or real input (see module doc)."""
 
     def __init__(self, up, down):
-        if up < 1 or down < 1:
-            raise ValueError(f"Parameters up={up} and down={down} must be whole numbers >= 1!")
+        for name, value in (("up", up), ("down", down)):
+            if value < 1:
+                raise ParameterError(f"Parameter {name}={value} is not a whole number >= 1!", param=name)
         taps, self.drop, self.up, self.down = resample_poly_taps(int(up), int(down))
         self.branch_len = -(-len(taps) // self.up)
         padded = np.zeros(self.branch_len * self.up)

@@ -18,6 +18,8 @@ Test signals (unit RMS, complex):
 
 from __future__ import annotations
 
+from .errors import ParameterError
+
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -44,7 +46,7 @@ def probe_signal(kind, length, channels, *, seed=0):
     elif kind == "tone":
         x = np.exp(2j * np.pi * (TONE_OFFSET / channels) * m)
     else:
-        raise ValueError(f"Parameter kind={kind!r} is not one of {SIGNALS}!")
+        raise ParameterError(f"Parameter kind={kind!r} is not one of {SIGNALS}!", param="kind")
     return x.astype(np.complex64)
 
 

@@ -1,0 +1,187 @@
+"""Declared parameters: what a block (or a link) accepts, and how a flow file's value is checked.
+
+A :class:`Param` has a *kind*; each kind is one row of :data:`KINDS`, a small
+converter function plus the words that describe it. ``Param.convert`` runs
+the kind's converter, then the numeric bounds; the kind list that plugins are
+checked against, ``Param.describe_type`` and the generated block reference all
+come from that table, so a new kind is one new row.
+
+Values arrive as tomllib gives them. ``bool`` is a subclass of ``int`` in
+Python, so every numeric converter refuses booleans explicitly.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Callable
+from dataclasses import KW_ONLY, dataclass
+from typing import Any
+
+from .units import UnitError, parse_quantity
+
+__all__ = ["KINDS", "Kind", "Param", "REQUIRED", "toml_repr"]
+
+
+class _Required:
+    """The default of a parameter that has none: the flow must give it."""
+
+    def __repr__(self) -> str:
+        return "REQUIRED"
+
+
+REQUIRED: Any = _Required()
+
+
+def toml_repr(value: object) -> str:
+    """A value as it would be written in TOML, for messages: true, "text", 16, [1, 2].
+
+    >>> toml_repr(True), toml_repr('a "b"'), toml_repr([1, 2.5])
+    ('true', '"a \\\\"b\\\\""', '[1, 2.5]')
+    """
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list):
+        return "[" + ", ".join(toml_repr(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {toml_repr(v)}" for k, v in value.items()) + " }"
+    return repr(value)
+
+
+@dataclass(frozen=True)
+class Kind:
+    """One kind of parameter: ``convert(param, value)`` returns the checked value or raises
+    ValueError saying what was expected; ``describe(param)`` names the kind for people."""
+
+    name: str
+    describe: Callable[[Param], str]
+    convert: Callable[[Param, Any], Any]
+
+
+def _expected(param: Param, words: str, value: object) -> ValueError:
+    return ValueError(f"expected {param.rule or words}, got {toml_repr(value)}")
+
+
+def _to_int(param: Param, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise _expected(param, "a whole number", value)
+    return int(value)
+
+
+def _to_float(param: Param, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise _expected(param, "a number", value)
+    return float(value)
+
+
+def _to_quantity(param: Param, value: Any) -> float:
+    assert param.unit is not None
+    try:
+        return parse_quantity(value, param.unit)
+    except UnitError as error:
+        raise ValueError(str(error)) from None
+
+
+def _to_bool(param: Param, value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise _expected(param, "true or false", value)
+    return value
+
+
+def _to_text(param: Param, value: Any) -> str:
+    if not isinstance(value, str) or not value:
+        raise _expected(param, f"{param.describe_type()} as a quoted string", value)
+    return value
+
+
+def _to_choice(param: Param, value: Any) -> Any:
+    if value not in param.choices:
+        if param.rule:
+            raise _expected(param, "", value)
+        hint = difflib.get_close_matches(str(value), [str(c) for c in param.choices], n=1)
+        extra = f" (did you mean {toml_repr(hint[0])}?)" if hint else ""
+        raise ValueError(f"expected one of {', '.join(toml_repr(c) for c in param.choices)}, "
+                         f"got {toml_repr(value)}{extra}")
+    return value
+
+
+def _to_list(param: Param, value: Any) -> list:
+    if not isinstance(value, list):
+        raise _expected(param, "a list", value)
+    return value
+
+
+def _as_is(param: Param, value: Any) -> Any:
+    return value
+
+
+def _words(text: str) -> Callable[[Param], str]:
+    return lambda param: text
+
+
+KINDS: dict[str, Kind] = {kind.name: kind for kind in (
+    Kind("int", _words("whole number"), _to_int),
+    Kind("float", _words("number"), _to_float),
+    Kind("quantity", lambda p: f"number in {p.unit}", _to_quantity),
+    Kind("bool", _words("true or false"), _to_bool),
+    Kind("str", _words("text"), _to_text),
+    Kind("input-path", _words("path of an existing file"), _to_text),
+    Kind("output-path", _words("path of a file to write"), _to_text),
+    Kind("choice", lambda p: "one of " + ", ".join(toml_repr(c) for c in p.choices), _to_choice),
+    Kind("list", _words("list"), _to_list),
+    Kind("channels", _words("channel selection"), _as_is),
+)}
+
+
+@dataclass(frozen=True)
+class Param:
+    """A declared parameter of a block (or an option of a link).
+
+    ``kind`` names a row of :data:`KINDS`: ``int``, ``float``, ``str``,
+    ``bool``, ``choice`` (one of ``choices``), ``quantity`` (a number with
+    ``unit``: Hz, s, dB or dBFS), ``input-path`` (a file that must exist,
+    relative to the flow file's folder), ``output-path`` (relative to the
+    run's output folder; may contain ``{channel}``-style placeholders),
+    ``channels`` (a channel selection, see docs/flow-files.md) or ``list``.
+    ``minimum`` and ``maximum`` bound numbers; ``rule``, when given, replaces
+    the generic "expected ..." words of a refusal.
+
+    >>> queue = Param("queue", "int", "messages held", default=8, minimum=1, maximum=100)
+    >>> queue.convert(16), queue.describe_type(), queue.required
+    (16, 'whole number', False)
+    >>> queue.convert(0)
+    Traceback (most recent call last):
+    ValueError: expected at least 1, got 0
+    """
+
+    name: str
+    kind: str
+    doc: str
+    _: KW_ONLY
+    default: Any = REQUIRED
+    unit: str | None = None
+    choices: tuple = ()
+    minimum: float | None = None
+    maximum: float | None = None
+    rule: str | None = None
+
+    @property
+    def required(self) -> bool:
+        """True when the flow must give a value (there is no default)."""
+        return self.default is REQUIRED
+
+    def describe_type(self) -> str:
+        """The kind in words, for messages and the block reference."""
+        kind = KINDS.get(self.kind)
+        return kind.describe(self) if kind else self.kind
+
+    def convert(self, value: Any) -> Any:
+        """Check and convert a value from the flow file; raise ValueError saying what was expected."""
+        value = KINDS[self.kind].convert(self, value)
+        number = isinstance(value, (int, float)) and not isinstance(value, bool)
+        if number and self.minimum is not None and value < self.minimum:
+            raise _expected(self, f"at least {self.minimum:g}", value)
+        if number and self.maximum is not None and value > self.maximum:
+            raise _expected(self, f"at most {self.maximum:g}", value)
+        return value
