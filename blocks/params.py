@@ -178,10 +178,11 @@ class Param:
 
     def convert(self, value: Any) -> Any:
         """Check and convert a value from the flow file; raise ValueError saying what was expected."""
+        given = value
         value = KINDS[self.kind].convert(self, value)
         number = isinstance(value, (int, float)) and not isinstance(value, bool)
         if number and self.minimum is not None and value < self.minimum:
-            raise _expected(self, f"at least {self.minimum:g}", value)
+            raise _expected(self, f"at least {self.minimum:g}", given)
         if number and self.maximum is not None and value > self.maximum:
-            raise _expected(self, f"at most {self.maximum:g}", value)
+            raise _expected(self, f"at most {self.maximum:g}", given)
         return value

@@ -12,63 +12,71 @@ import argparse
 import os
 import signal
 import sys
-
-from types import SimpleNamespace
+from collections.abc import Callable
+from typing import TextIO
 
 from . import bench_command, design_command, flow_commands, verify_commands
 
-COMMANDS = {
-    "run": (SimpleNamespace(add_arguments=flow_commands.add_run_arguments, run=flow_commands.run_run),
-            "run a flow file: one process per block"),
-    "check": (SimpleNamespace(add_arguments=flow_commands.add_check_arguments, run=flow_commands.run_check),
-              "check a flow file without running it; report every problem"),
-    "blocks": (SimpleNamespace(add_arguments=flow_commands.add_blocks_arguments, run=flow_commands.run_blocks),
-               "list block types, or show one type's parameters and ports"),
-    "design": (design_command, "design a matched analysis/synthesis bank and print its figures"),
-    "roundtrip": (SimpleNamespace(add_arguments=verify_commands.add_roundtrip_arguments,
-                                  run=verify_commands.run_roundtrip),
-                  "run test signals through analysis and synthesis and report the reconstruction"),
-    "channel-quality": (SimpleNamespace(add_arguments=verify_commands.add_quality_arguments,
-                                        run=verify_commands.run_quality),
-                        "measure a channelizer's channels with tones and compare with its taps' figures"),
-    "bench": (bench_command, "measure bank throughput against a bare FFT in the same run"),
-    "keys": (SimpleNamespace(add_arguments=flow_commands.add_keys_arguments, run=flow_commands.run_keys),
-             "make CURVE key pairs for a link that crosses machines"),
-}
+__all__ = ["UsageError", "build_parser", "entry_point", "main"]
+
+Runner = Callable[[argparse.Namespace, TextIO], int]
+Adder = Callable[[argparse.ArgumentParser], None]
 
 
 class UsageError(Exception):
     """A problem with what the user asked for; printed as one line, exit status 2."""
 
 
-def build_parser():
-    parser = argparse.ArgumentParser(prog="bandloom", description="Polyphase channelizer and synthesis "
-                                     "blocks run as processes over ZeroMQ.")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    sub.required = True
-    for name, (module, help_text) in COMMANDS.items():
-        p = sub.add_parser(name, help=help_text, description=help_text)
-        module.add_arguments(p)
-    return parser
-
-
-def _progress(message):
+def _progress(message: str) -> None:
     if sys.stderr.isatty():
         sys.stderr.write(f"\r\x1b[K{message}")
         sys.stderr.flush()
 
 
-def main(argv=None) -> int:
+def _run_bench(args: argparse.Namespace, out: TextIO) -> int:
+    try:
+        return bench_command.run(args, out, progress=_progress)
+    finally:
+        if sys.stderr.isatty():
+            sys.stderr.write("\r\x1b[K")
+
+
+#: name -> (adds its arguments, runs it, one line of help)
+COMMANDS: dict[str, tuple[Adder, Runner, str]] = {
+    "run": (flow_commands.add_run_arguments, flow_commands.run_run, "run a flow file: one process per block"),
+    "check": (flow_commands.add_check_arguments, flow_commands.run_check,
+              "check a flow file without running it; report every problem"),
+    "blocks": (flow_commands.add_blocks_arguments, flow_commands.run_blocks,
+               "list block types, or show one type's parameters and ports"),
+    "design": (design_command.add_arguments, design_command.run,
+               "design a matched analysis/synthesis bank and print its figures"),
+    "roundtrip": (verify_commands.add_roundtrip_arguments, verify_commands.run_roundtrip,
+                  "run test signals through analysis and synthesis and report the reconstruction"),
+    "channel-quality": (verify_commands.add_quality_arguments, verify_commands.run_quality,
+                        "measure a channelizer's channels with tones and compare with its taps' figures"),
+    "bench": (bench_command.add_arguments, _run_bench, "measure bank throughput against a bare FFT in the same run"),
+    "keys": (flow_commands.add_keys_arguments, flow_commands.run_keys,
+             "make CURVE key pairs for a link that crosses machines"),
+}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="bandloom", description="Polyphase channelizer and synthesis "
+                                     "blocks run as processes over ZeroMQ.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+    for name, (add_arguments, run, help_text) in COMMANDS.items():
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        add_arguments(p)
+        p.set_defaults(func=run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    module, _ = COMMANDS[args.command]
     try:
-        if module is bench_command:
-            status = module.run(args, sys.stdout, progress=_progress)
-            if sys.stderr.isatty():
-                sys.stderr.write("\r\x1b[K")
-        else:
-            status = module.run(args, sys.stdout)
+        status = args.func(args, sys.stdout)
         sys.stdout.flush()
         return status
     except flow_commands.Interrupted:
@@ -76,13 +84,12 @@ def main(argv=None) -> int:
     except (ValueError, UsageError, OSError) as error:
         if isinstance(error, BrokenPipeError):
             raise
-        if isinstance(error, OSError) and error.filename:
-            error = f"{error.filename}: {error.strerror}"
-        print(f"bandloom {args.command}: error: {error}", file=sys.stderr)
+        text = f"{error.filename}: {error.strerror}" if isinstance(error, OSError) and error.filename else str(error)
+        print(f"bandloom {args.command}: error: {text}", file=sys.stderr)
         return 2
 
 
-def entry_point():
+def entry_point() -> int:
     """Console-script wrapper: quiet on a closed pipe, Python's exit on Ctrl-C."""
     try:
         return main()

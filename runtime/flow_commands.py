@@ -2,32 +2,38 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import shutil
 import sys
 from pathlib import Path
+from typing import TextIO
 
-from bandloom.blocks.block import REQUIRED, toml_repr
+from bandloom.blocks.block import REQUIRED, Param, toml_repr
 from bandloom.blocks.units import format_frequency
 
 from ._table import render_rows
-from .flowfile import FlowErrors, load_flow
-from .plugins import load_registry
-from .supervisor import Supervisor
+from .flow import Flow, FlowErrors, load_flow
+from .plugins import Registry, load_registry
+from .run_report import print_summary
+from .supervisor import RunOutcome, Supervisor
+
+
+__all__ = ["Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys", "run_run"]
 
 
 class Interrupted(Exception):
     """The run was stopped with Ctrl-C after a clean shutdown."""
 
 
-def _registry(log):
+def _registry(log: TextIO) -> Registry:
     registry = load_registry()
     for line in registry.failures:
         print(f"bandloom: warning: {line}", file=log)
     return registry
 
 
-def _load(args, log):
+def _load(args: argparse.Namespace, log: TextIO) -> Flow | None:
     registry = _registry(log)
     try:
         return load_flow(args.flow, registry, output_dir=getattr(args, "out", None))
@@ -39,12 +45,12 @@ def _load(args, log):
         return None
 
 
-def add_check_arguments(parser):
+def add_check_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("flow", help="the flow file (TOML)")
     parser.add_argument("--out", help="output folder the run would use (default: current folder)")
 
 
-def run_check(args, out, log=None):
+def run_check(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     flow = _load(args, log)
     if flow is None:
@@ -62,14 +68,14 @@ def run_check(args, out, log=None):
     return 0
 
 
-def add_run_arguments(parser):
+def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("flow", help="the flow file (TOML)")
     parser.add_argument("--out", help="folder for output files (default: current folder)")
     parser.add_argument("--quiet", action="store_true", help="no status display and no notes on stderr")
     parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
 
 
-def run_run(args, out, log=None):
+def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     flow = _load(args, log)
     if flow is None:
@@ -78,21 +84,21 @@ def run_run(args, out, log=None):
     supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log)
     outcome = supervisor.run()
     summary = supervisor.summary()
-    supervisor.print_summary(summary)
+    print_summary(summary, supervisor.failures(), log)
     if args.report:
         Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
-    if outcome == "interrupted":
+    if outcome is RunOutcome.INTERRUPTED:
         raise Interrupted()
-    return 0 if outcome == "finished" else 1
+    return 0 if outcome is RunOutcome.FINISHED else 1
 
 
-def add_blocks_arguments(parser):
+def add_blocks_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("type", nargs="?", help="show one block type's parameters and ports")
     parser.add_argument("--markdown", action="store_true", help="print the reference of every block type as "
                         "Markdown (docs/blocks.md is made this way)")
 
 
-def _default(param):
+def _default(param: Param) -> str:
     if param.default is REQUIRED:
         return "required"
     if param.default is None:
@@ -102,7 +108,7 @@ def _default(param):
     return toml_repr(param.default)
 
 
-def blocks_markdown(registry, names):
+def blocks_markdown(registry: Registry, names: list[str]) -> str:
     lines = ["# Block reference", "",
              "Made by `bandloom blocks --markdown`; do not edit by hand. Parameters with units accept "
              "\"2.4 MHz\", \"25 kHz\", \"-30 dBFS\", \"1.5 s\" or a plain number in the base unit.", ""]
@@ -124,7 +130,7 @@ def blocks_markdown(registry, names):
     return "\n".join(lines)
 
 
-def run_blocks(args, out, log=None):
+def run_blocks(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     registry = _registry(log)
     if args.markdown:
@@ -153,11 +159,11 @@ def run_blocks(args, out, log=None):
     return 0
 
 
-def add_keys_arguments(parser):
+def add_keys_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("folder", help="folder to create the key pairs in")
 
 
-def run_keys(args, out, log=None):
+def run_keys(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     import zmq.auth
 

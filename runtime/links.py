@@ -15,7 +15,10 @@
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
 from pathlib import Path
+from types import TracebackType
+from typing import Any
 
 import numpy as np
 import zmq
@@ -24,6 +27,11 @@ import zmq.auth
 from bandloom.blocks.block import Chunk
 
 from . import wire
+from .control import InletStats, OutletStats
+from .flow.model import WhenFull
+from .worker_spec import LinkSpec
+
+__all__ = ["Aborted", "Inlet", "MAX_MESSAGE_BYTES", "Outlet", "configure", "secure_server"]
 
 MAX_MESSAGE_BYTES = 1 << 30
 POLL_MS = 200
@@ -33,7 +41,8 @@ class Aborted(Exception):
     """The run is being aborted; the worker stops at once."""
 
 
-def configure(sock, queue):
+def configure(sock: zmq.Socket, queue: int) -> None:
+    """Options every link socket gets, set before bind or connect."""
     # Unlimited linger: messages queued when a sender closes are still
     # delivered (a consumer may still be starting). An aborted run ends
     # stuck senders by killing them.
@@ -43,7 +52,7 @@ def configure(sock, queue):
     sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
 
 
-def secure_server(sock, keys_dir, context):
+def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) -> Any:
     """Make ``sock`` a CURVE server with the keys made by 'bandloom keys'; return the authenticator."""
     from zmq.auth.thread import ThreadAuthenticator
 
@@ -58,25 +67,44 @@ def secure_server(sock, keys_dir, context):
     return authenticator
 
 
-class Outlet:
-    """The sending end of one link."""
+class _LinkEnd:
+    """What both ends share: a socket that closes with the ``with`` block."""
 
-    def __init__(self, context, spec, should_abort):
+    spec: LinkSpec
+
+    def close(self) -> None:
+        raise NotImplementedError
+
+    def __enter__(self) -> _LinkEnd:
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, error: BaseException | None,
+                 trace: TracebackType | None) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"<{type(self).__name__} link {self.spec.link} {self.spec.label!r} at {self.spec.endpoint}>"
+
+
+class Outlet(_LinkEnd):
+    """The sending end of one link; ``should_abort`` is asked while the link is full."""
+
+    def __init__(self, context: zmq.Context, spec: LinkSpec, should_abort: Callable[[], bool]) -> None:
         self.spec = spec
-        self.id = spec["link"]
-        self.columns = spec.get("columns")
-        self.stream = spec["stream"]
-        self.when_full = spec.get("when_full", "wait")
+        self.id = spec.link
+        self.columns = list(spec.columns) if spec.columns is not None else None
+        self.stream = spec.stream
+        self.when_full = spec.when_full
         self.should_abort = should_abort
         self.sock = context.socket(zmq.PUSH)
-        configure(self.sock, spec.get("queue", 8))
+        configure(self.sock, spec.queue)
         self.authenticator = None
-        if spec.get("bind"):
-            if spec.get("keys"):
-                self.authenticator = secure_server(self.sock, spec["keys"], context)
-            self.sock.bind(spec["endpoint"])
+        if spec.bind:
+            if spec.keys:
+                self.authenticator = secure_server(self.sock, spec.keys, context)
+            self.sock.bind(spec.endpoint)
         else:
-            self.sock.connect(spec["endpoint"])
+            self.sock.connect(spec.endpoint)
         self.next_index = 0          # index after the last row sent
         self.offered_index = 0       # index after the last row offered, sent or dropped
         self.seq = 0
@@ -88,12 +116,12 @@ class Outlet:
         self.missing_rows = 0
         self.blocked_seconds = 0.0
         s = self.stream
-        self._fixed = dict(stream=spec["label"], sample_type=s.sample_type, sample_rate=s.sample_rate,
+        self._fixed: dict[str, Any] = dict(stream=spec.label, sample_type=s.sample_type, sample_rate=s.sample_rate,
                            centre_frequency=s.centre_frequency, width=s.width)
         if s.channels:
             self._fixed.update(channels=list(s.channels), channel_frequencies=list(s.channel_frequencies))
 
-    def _send(self, frames, *, droppable):
+    def _send(self, frames: list, *, droppable: bool) -> bool:
         if droppable:
             try:
                 self.sock.send_multipart(frames, copy=False, flags=zmq.NOBLOCK)
@@ -109,7 +137,7 @@ class Outlet:
         self.blocked_seconds += time.monotonic() - started
         return True
 
-    def send(self, chunk):
+    def send(self, chunk: Chunk) -> None:
         data = chunk.data
         if self.columns is not None:
             data = data[:, self.columns[0]] if len(self.columns) == 1 else data[:, self.columns]
@@ -120,12 +148,12 @@ class Outlet:
         self.offered_index = chunk.first_index + count
         gap = chunk.first_index - self.next_index
         if gap < 0:
-            raise RuntimeError(f"link {self.spec['label']}: chunk starts at {chunk.first_index}, before "
+            raise RuntimeError(f"link {self.spec.label}: chunk starts at {chunk.first_index}, before "
                                f"the {self.next_index} rows already sent")
         flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity) else 0
         header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
                                     dropped=gap, **self._fixed)
-        if not self._send([header, data], droppable=self.when_full == "drop"):
+        if not self._send([header, data], droppable=self.when_full is WhenFull.DROP):
             self.dropped_rows += count
             self.dropped_messages += 1
             return
@@ -136,7 +164,7 @@ class Outlet:
         self.missing_rows += gap
         self.next_index = chunk.first_index + count
 
-    def end(self, final_index=None):
+    def end(self, final_index: int | None = None) -> None:
         """Send end of stream, counting rows lost after the last message: dropped here when the
         link was full, or (``final_index``, from a live source) never delivered to the block."""
         gap = max(0, max(final_index or 0, self.offered_index) - self.next_index)
@@ -148,30 +176,30 @@ class Outlet:
         self.discontinuities += bool(gap)
         self.next_index += gap
 
-    def stats(self):
-        return {"rows": self.rows, "messages": self.messages, "seq": self.seq,
-                "dropped_rows": self.dropped_rows, "dropped_messages": self.dropped_messages,
-                "discontinuities": self.discontinuities, "missing_rows": self.missing_rows,
-                "next_index": self.next_index, "blocked_seconds": round(self.blocked_seconds, 3)}
+    def stats(self) -> OutletStats:
+        return OutletStats(rows=self.rows, messages=self.messages, seq=self.seq, dropped_rows=self.dropped_rows,
+                           dropped_messages=self.dropped_messages, discontinuities=self.discontinuities,
+                           missing_rows=self.missing_rows, next_index=self.next_index,
+                           blocked_seconds=round(self.blocked_seconds, 3))
 
-    def close(self, *, discard=False):
+    def close(self, *, discard: bool = False) -> None:
         """Close; queued messages are still delivered unless ``discard`` (abort, error)."""
         self.sock.close(linger=0 if discard else None)
         if self.authenticator:
             self.authenticator.stop()
 
 
-class Inlet:
-    """The receiving end of one link; binds its private endpoint."""
+class Inlet(_LinkEnd):
+    """The receiving end of one link, feeding input ``port``; binds its private endpoint."""
 
-    def __init__(self, context, spec, port):
+    def __init__(self, context: zmq.Context, spec: LinkSpec, port: str) -> None:
         self.spec = spec
-        self.id = spec["link"]
+        self.id = spec.link
         self.port = port
-        self.stream = spec["stream"]
+        self.stream = spec.stream
         self.sock = context.socket(zmq.PULL)
-        configure(self.sock, spec.get("queue", 8))
-        self.sock.bind(spec["endpoint"])
+        configure(self.sock, spec.queue)
+        self.sock.bind(spec.endpoint)
         self.rows = 0
         self.messages = 0
         self.gaps = 0
@@ -179,7 +207,7 @@ class Inlet:
         self.last_seq = -1
         self.ended = False
 
-    def receive(self):
+    def receive(self) -> Chunk | None:
         """Take one message; return a Chunk, or None at the end of the stream (then ``ended`` is set;
         an end of stream that counts lost rows first returns them as an empty chunk). Raises
         wire.WireError."""
@@ -209,9 +237,9 @@ class Inlet:
         return Chunk(data, header["first_index"], discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY),
                      dropped=header["dropped"])
 
-    def stats(self):
-        return {"rows": self.rows, "messages": self.messages, "seq": self.last_seq, "gaps": self.gaps,
-                "missing": self.missing}
+    def stats(self) -> InletStats:
+        return InletStats(rows=self.rows, messages=self.messages, seq=self.last_seq, gaps=self.gaps,
+                          missing=self.missing)
 
-    def close(self):
+    def close(self) -> None:
         self.sock.close(linger=0)

@@ -1,17 +1,15 @@
-"""The supervisor: start one worker process per block instance, watch them, stop them, report.
+"""The supervisor: start one worker process per block instance, watch them, stop them.
 
 Local links use ``ipc://`` endpoints in a private temporary folder (mode
-0700, removed at exit). The run ends when every worker has finished; the
-summary (samples, messages, drops and discontinuities per link, and what
-each block reports) goes to stderr. Ctrl-C asks the sources to end their
-streams so everything downstream drains and closes its files; if that takes
-too long the run is aborted. A worker that dies is named with its exit
-reason, the others are aborted cleanly, and the run fails.
+0700, removed at exit). The run ends when every worker has finished. Ctrl-C
+asks the sources to end their streams so everything downstream drains and
+closes its files; if that takes too long the run is aborted. A worker that
+dies is named with its exit reason, the others are aborted cleanly, and the
+run fails. What the run did is told by :mod:`.run_report`.
 """
 
 from __future__ import annotations
 
-import json
 import os
 import shutil
 import signal
@@ -19,72 +17,106 @@ import subprocess
 import sys
 import tempfile
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from enum import Enum
+from pathlib import Path
+from typing import Any, TextIO
 
-import msgpack
 import zmq
 
-from .worker import stream_to_dict
+from .control import (TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent,
+                      next_state)
+from .flow import Flow, Instance, Link
+from .run_report import StatusDisplay, describe_exit, summarise
+from .worker_spec import LinkSpec, WorkerSpec
+
+__all__ = ["BlockRecord", "RunOutcome", "Supervisor"]
 
 DRAIN_SECONDS = 10.0
 ABORT_SECONDS = 5.0
 DISPLAY_INTERVAL = 0.5
 
 
+class RunOutcome(str, Enum):
+    FINISHED = "finished"
+    INTERRUPTED = "interrupted"
+    FAILED = "failed"
+
+
 @dataclass
-class BlockState:
+class BlockRecord:
+    """What the supervisor knows of one block process."""
+
     name: str
     process: subprocess.Popen
-    state: str = "starting"
-    pid: int = 0
-    last: dict = field(default_factory=dict)
-    rate: float = 0.0
+    state: BlockState = BlockState.STARTING
+    last: StatsMessage | None = None
+    rate: float = 0.0             # rows per second between the last two statistics
     exit_reason: str = ""
-    report: list = field(default_factory=list)
+    report: tuple[str, ...] = ()
+
+    @property
+    def pid(self) -> int:
+        return self.process.pid
+
+    def absorb(self, message: StatsMessage) -> None:
+        """Take a statistics message: counters, rate, and the state change its event makes."""
+        previous = self.last
+        if previous is not None and message.time > previous.time:
+            rows = max(message.rows_in, message.rows_out) - max(previous.rows_in, previous.rows_out)
+            self.rate = rows / (message.time - previous.time)
+        self.last = message
+        self.state = next_state(self.state, message.event)
+        if message.event in (WorkerEvent.DONE, WorkerEvent.ABORTED, WorkerEvent.ERROR):
+            self.report = tuple(message.report)
+        if message.event is WorkerEvent.ERROR:
+            self.exit_reason = message.message
+
+    def process_ended(self, code: int) -> None:
+        """The process has exited with ``code`` (negative: killed by that signal)."""
+        if self.state is not BlockState.ERROR:
+            self.exit_reason = ""         # an error event, when there was one, gave the reason
+        self.state = next_state(self.state, ProcessEnd.CLEAN if code == 0 else ProcessEnd.FAULT)
 
 
-def _describe_exit(code):
-    if code is None:
-        return "still running"
-    if code < 0:
-        try:
-            return f"killed by {signal.Signals(-code).name}"
-        except ValueError:
-            return f"killed by signal {-code}"
-    return f"exit status {code}"
+def link_specs(folder: str, inst: Instance) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
+    """The ends of ``inst``'s links as its worker opens them."""
+    def spec(link: Link, *, sending: bool) -> LinkSpec:
+        return LinkSpec(link=link.id, label=link.label, endpoint=link.endpoint or f"ipc://{folder}/{link.id}",
+                        stream=link.stream, bind=link.endpoint is not None if sending else True,
+                        columns=link.columns if sending else None, queue=link.options.queue,
+                        when_full=link.options.when_full, keys=link.options.keys if sending else None)
+    inputs = {port: spec(link, sending=False) for port, link in inst.inputs.items()}
+    outputs = {port: [spec(link, sending=True) for link in links] for port, links in inst.outputs.items()}
+    return inputs, outputs
 
 
 class Supervisor:
-    def __init__(self, flow, *, output_dir, quiet=False, log=sys.stderr):
+    """Runs one flow: ``run()`` returns the outcome, ``summary()`` what happened."""
+
+    def __init__(self, flow: Flow, *, output_dir: str | Path, quiet: bool = False, log: TextIO = sys.stderr) -> None:
         self.flow = flow
         self.output_dir = output_dir
         self.quiet = quiet
         self.log = log
-        self.show_status = (not quiet) and log.isatty()
-        self.blocks = {}
+        self.display = StatusDisplay(log) if (not quiet) and log.isatty() else None
+        self.blocks: dict[str, BlockRecord] = {}
         self.interrupted = False
-        self.failed = []
-        self.display_lines = 0
+        self.failed: list[str] = []
+        self.elapsed = 0.0
 
-    # -- wiring --------------------------------------------------------------------------------
-    def specs(self, folder, control, stats):
-        endpoints = {link.id: (link.endpoint or f"ipc://{folder}/{link.id}") for link in self.flow.links}
+    def worker_specs(self, folder: str) -> list[tuple[Instance, WorkerSpec]]:
+        specs = []
         for inst in self.flow.instances.values():
-            inputs = {port: {"link": link.id, "endpoint": endpoints[link.id], "queue": link.queue,
-                             "stream": stream_to_dict(link.stream), "label": link.label}
-                      for port, link in inst.inputs.items()}
-            outputs = {port: [{"link": link.id, "endpoint": endpoints[link.id], "bind": link.endpoint is not None,
-                               "columns": link.columns, "queue": link.queue, "when_full": link.when_full,
-                               "keys": link.keys, "stream": stream_to_dict(link.stream), "label": link.label}
-                              for link in links]
-                       for port, links in inst.outputs.items()}
-            yield inst, {"name": inst.name, "type": inst.type_name, "params": inst.params,
-                         "placeholders": inst.placeholders, "flow_path": str(self.flow.path.resolve()),
-                         "output_dir": str(self.output_dir), "inputs": inputs, "outputs": outputs,
-                         "control": control, "stats": stats}
+            inputs, outputs = link_specs(folder, inst)
+            specs.append((inst, WorkerSpec(
+                name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
+                flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,
+                outputs=outputs, control=f"ipc://{folder}/control", stats=f"ipc://{folder}/stats")))
+        return specs
 
     # -- the run -------------------------------------------------------------------------------
-    def run(self):
+    def run(self) -> RunOutcome:
         folder = tempfile.mkdtemp(prefix="bandloom-")          # created with mode 0700
         os.chmod(folder, 0o700)
         context = zmq.Context()
@@ -96,31 +128,30 @@ class Supervisor:
         stats.bind(f"ipc://{folder}/stats")
         previous = {sig: signal.getsignal(sig) for sig in (signal.SIGINT, signal.SIGTERM)}
 
-        def request_stop(signum, frame):
+        def request_stop(signum: int, frame: object) -> None:
             self.interrupted = True
 
         signal.signal(signal.SIGINT, request_stop)
         signal.signal(signal.SIGTERM, request_stop)
         started = time.monotonic()
         try:
-            for number, (inst, spec) in enumerate(self.specs(folder, f"ipc://{folder}/control",
-                                                             f"ipc://{folder}/stats")):
+            for number, (inst, spec) in enumerate(self.worker_specs(folder)):
                 spec_path = os.path.join(folder, f"spec-{number}.json")
                 with open(spec_path, "w") as handle:
-                    json.dump(spec, handle)
+                    handle.write(spec.to_json())
                 # Only the block that reads standard input gets it, and only the one that
                 # writes data to standard output gets that; the rest print to stderr.
                 process = subprocess.Popen(
                     [sys.executable, "-m", "bandloom.runtime.worker", spec_path],
                     stdin=None if inst.cls.uses_stdin else subprocess.DEVNULL,
                     stdout=None if inst.cls.uses_stdout else sys.stderr.fileno())
-                self.blocks[inst.name] = BlockState(inst.name, process, pid=process.pid)
+                self.blocks[inst.name] = BlockRecord(inst.name, process)
             self.watch(control, stats)
         finally:
-            for state in self.blocks.values():
-                if state.process.poll() is None:
-                    state.process.kill()
-                    state.process.wait()
+            for record in self.blocks.values():
+                if record.process.poll() is None:
+                    record.process.kill()
+                    record.process.wait()
             signal.signal(signal.SIGINT, previous[signal.SIGINT])
             signal.signal(signal.SIGTERM, previous[signal.SIGTERM])
             control.close()
@@ -128,33 +159,30 @@ class Supervisor:
             context.term()
             shutil.rmtree(folder, ignore_errors=True)
         self.elapsed = time.monotonic() - started
-        self.clear_display()
+        if self.display:
+            self.display.clear()
         return self.outcome()
 
-    def watch(self, control, stats):
+    def watch(self, control: zmq.Socket, stats: zmq.Socket) -> None:
         stopping_since = None
         aborting_since = None
         last_display = 0.0
         poller = zmq.Poller()
         poller.register(stats, zmq.POLLIN)
         while True:
-            for _ in range(200):
-                if not poller.poll(0 if _ else 200):
+            for turn in range(200):
+                if not poller.poll(0 if turn else 200):
                     break
-                self.absorb(msgpack.unpackb(stats.recv(), raw=False))
+                self.absorb(stats.recv())
             now = time.monotonic()
-            for state in self.blocks.values():
-                code = state.process.poll()
-                if code is not None and state.state not in ("done", "failed", "aborted", "died"):
+            for record in self.blocks.values():
+                code = record.process.poll()
+                if code is not None and record.state not in TERMINAL_STATES:
                     self.drain_stats(stats)
-                    if code == 0 and state.state not in ("error",):
-                        state.state = state.state if state.state in ("done", "aborted") else "done"
-                    else:
-                        if state.state != "error":          # an error event already gave the reason
-                            state.exit_reason = ""
-                        state.state = "died" if state.state != "error" else "failed"
-                        self.failed.append(state.name)
-            running = [s for s in self.blocks.values() if s.process.poll() is None]
+                    record.process_ended(code)
+                    if record.state.is_failure:
+                        self.failed.append(record.name)
+            running = [r for r in self.blocks.values() if r.process.poll() is None]
             if not running:
                 self.drain_stats(stats)
                 return
@@ -167,150 +195,67 @@ class Supervisor:
                 self.say(f"still draining after {DRAIN_SECONDS:g} s; aborting")
                 aborting_since = now
             for name in self.releasable():
-                control.send(b"release " + name.encode())
+                control.send(Control(ControlWord.RELEASE, name).encode())
             if aborting_since is not None:
-                control.send(b"abort")
+                control.send(Control(ControlWord.ABORT).encode())
                 if now - aborting_since > ABORT_SECONDS:
-                    for state in running:
-                        state.process.kill()
+                    for record in running:
+                        record.process.kill()
             elif stopping_since is not None:
-                control.send(b"stop")
-            if self.show_status and now - last_display >= DISPLAY_INTERVAL:
-                self.display()
+                control.send(Control(ControlWord.STOP).encode())
+            if self.display and now - last_display >= DISPLAY_INTERVAL:
+                self.display.show(self.flow, self.blocks)
                 last_display = now
 
-    def releasable(self):
+    def releasable(self) -> list[str]:
         """Blocks that have ended their streams and whose every internal consumer has finished."""
         ready = []
-        for name, state in self.blocks.items():
-            if state.state != "ending" or state.process.poll() is not None:
+        for name, record in self.blocks.items():
+            if record.state is not BlockState.ENDING or record.process.poll() is not None:
                 continue
             consumers = {link.target for port in self.flow.instances[name].outputs.values()
                          for link in port if link.target}
-            if all(self.blocks[c].process.poll() is not None or self.blocks[c].state in ("done", "aborted")
-                   for c in consumers):
+            if all(self.blocks[c].process.poll() is not None
+                   or self.blocks[c].state in (BlockState.DONE, BlockState.ABORTED) for c in consumers):
                 ready.append(name)
         return ready
 
-    def drain_stats(self, stats):
+    def drain_stats(self, stats: zmq.Socket) -> None:
         while True:
             try:
-                self.absorb(msgpack.unpackb(stats.recv(zmq.NOBLOCK), raw=False))
+                self.absorb(stats.recv(zmq.NOBLOCK))
             except zmq.Again:
                 return
 
-    def absorb(self, message):
-        state = self.blocks.get(message.get("block"))
-        if state is None:
-            return
-        previous = state.last
-        if previous and message.get("time", 0) > previous.get("time", 0):
-            rows = max(message.get("rows_in", 0), message.get("rows_out", 0)) - \
-                max(previous.get("rows_in", 0), previous.get("rows_out", 0))
-            state.rate = rows / (message["time"] - previous["time"])
-        state.last = message
-        event = message.get("event")
-        if event in ("hello", "stats") and state.state != "ending":
-            state.state = "running"
-        elif event == "ending":
-            state.state = "ending"
-        elif event == "done":
-            state.state = "done"
-            state.report = message.get("report", [])
-        elif event == "aborted":
-            state.state = "aborted"
-            state.report = message.get("report", [])
-        elif event == "error":
-            state.state = "error"
-            state.exit_reason = message.get("message", "")
-            state.report = message.get("report", [])
+    def absorb(self, raw: bytes) -> None:
+        message = StatsMessage.decode(raw)
+        record = self.blocks.get(message.block)
+        if record is not None:
+            record.absorb(message)
 
-    # -- display and summary -----------------------------------------------------------------------
-    def say(self, text):
+    def say(self, text: str) -> None:
         if not self.quiet:
-            self.clear_display()
+            if self.display:
+                self.display.clear()
             print(f"bandloom: {text}", file=self.log)
 
-    def link_table(self):
-        rows = []
-        for link in self.flow.links:
-            sent = recv = {}
-            src = self.blocks.get(link.source)
-            if src:
-                sent = src.last.get("outputs", {}).get(str(link.id), {})
-            dst = self.blocks.get(link.target) if link.target else None
-            if dst:
-                recv = dst.last.get("inputs", {}).get(str(link.id), {})
-            rows.append((link, sent, recv))
-        return rows
+    # -- outcome -------------------------------------------------------------------------------
+    def outcome(self) -> RunOutcome:
+        if self.failed:
+            return RunOutcome.FAILED
+        return RunOutcome.INTERRUPTED if self.interrupted else RunOutcome.FINISHED
 
-    def display(self):
-        lines = [f"{'block':<24} {'state':<9} {'rate/s':>12} {'samples':>12} {'queue':>6} {'drops':>8}  progress"]
-        queue_fill = {}
-        for link, sent, recv in self.link_table():
-            if link.target:
-                in_flight = max(0, sent.get("seq", 0) - (recv.get("seq", -1) + 1))
-                queue_fill[link.target] = max(queue_fill.get(link.target, 0.0), min(1.0, in_flight / (2 * link.queue)))
-        for name, state in self.blocks.items():
-            last = state.last
-            drops = sum(o.get("dropped_rows", 0) for o in last.get("outputs", {}).values())
-            done = max(last.get("rows_in", 0), last.get("rows_out", 0))
-            fill = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
-            bar = ""
-            if last.get("progress") and last["progress"][1]:
-                part = min(1.0, last["progress"][0] / last["progress"][1])
-                bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
-            lines.append(f"{name[:24]:<24} {state.state:<9} {state.rate:>12.4g} {done:>12} {fill:>6} {drops:>8}  {bar}")
-        self.clear_display()
-        self.log.write("\n".join(lines) + "\n")
-        self.log.flush()
-        self.display_lines = len(lines)
+    def summary(self) -> dict[str, Any]:
+        """The end-of-run report as plain values (also what --report writes as JSON)."""
+        return summarise(self.flow, self.blocks, outcome=self.outcome().value, seconds=self.elapsed)
 
-    def clear_display(self):
-        if self.display_lines:
-            self.log.write(f"\x1b[{self.display_lines}F\x1b[J")
-            self.log.flush()
-            self.display_lines = 0
-
-    def outcome(self):
-        return "failed" if self.failed else ("interrupted" if self.interrupted else "finished")
-
-    def summary(self):
-        """The end-of-run report as a dict (also written by --report)."""
-        links = []
-        for link, sent, recv in self.link_table():
-            links.append({
-                "link": link.label, "where": link.where,
-                "sent_samples": sent.get("rows", 0), "sent_messages": sent.get("messages", 0),
-                "received_samples": recv.get("rows", 0) if link.target else None,
-                "received_messages": recv.get("messages", 0) if link.target else None,
-                "dropped_samples": sent.get("dropped_rows", 0), "dropped_messages": sent.get("dropped_messages", 0),
-                "discontinuities": sent.get("discontinuities", 0),
-                "missing_samples": sent.get("missing_rows", 0), "last_index": sent.get("next_index", 0),
-            })
-        blocks = {name: {"pid": s.pid, "state": s.state, "exit": _describe_exit(s.process.returncode),
-                         "reason": s.exit_reason, "report": s.report, "samples_in": s.last.get("rows_in", 0),
-                         "samples_out": s.last.get("rows_out", 0)}
-                  for name, s in self.blocks.items()}
-        return {"flow": str(self.flow.path), "name": self.flow.name, "outcome": self.outcome(),
-                "seconds": round(getattr(self, "elapsed", 0.0), 3), "blocks": blocks, "links": links}
-
-    def print_summary(self, summary):
-        out = self.log
-        print(f"bandloom: flow {summary['name']!r} {summary['outcome']} in {summary['seconds']:.2f} s", file=out)
+    def failures(self) -> list[str]:
+        """One line per block that failed or died, with its exit and reason."""
+        lines = []
         for name in self.failed:
-            s = self.blocks[name]
-            how = "failed" if s.state == "failed" else "died"
-            reason = f": {s.exit_reason}" if s.exit_reason else ""
-            print(f"bandloom: block {name!r} (pid {s.pid}) {how} ({_describe_exit(s.process.returncode)}){reason}",
-                  file=out)
-        width = max([len(x["link"]) for x in summary["links"]] + [4])
-        print(f"  {'link':<{width}}  {'samples':>12}  {'messages':>9}  {'dropped':>9}  {'missing':>9}  "
-              f"{'gaps':>5}", file=out)
-        for x in summary["links"]:
-            print(f"  {x['link']:<{width}}  {x['sent_samples']:>12}  {x['sent_messages']:>9}  "
-                  f"{x['dropped_samples']:>9}  {x['missing_samples']:>9}  {x['discontinuities']:>5}", file=out)
-        print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged)", file=out)
-        for name, b in summary["blocks"].items():
-            for line in b["report"]:
-                print(f"  {name}: {line}", file=out)
+            record = self.blocks[name]
+            how = "failed" if record.state is BlockState.FAILED else "died"
+            reason = f": {record.exit_reason}" if record.exit_reason else ""
+            lines.append(f"block {name!r} (pid {record.pid}) {how} ({describe_exit(record.process.returncode)})"
+                         f"{reason}")
+        return lines

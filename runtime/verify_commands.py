@@ -9,19 +9,21 @@ synthesis settings, an IQ reader per test signal and an IQ writer per output.
 
 from __future__ import annotations
 
+import argparse
 import json
 import sys
 import tempfile
 from pathlib import Path
+from typing import Any, TextIO
 
 import numpy as np
 
-from bandloom.blocks.block import toml_repr
-from bandloom.blocks.dsp.verification import SIGNALS, analyse_round_trip, measure_channel_response, \
-    round_trip_in_process, probe_signal
+from bandloom.blocks.dsp.verification import SIGNALS, SignalResult, analyse_round_trip, \
+    measure_channel_response, probe_signal, round_trip_in_process
 
+from ._table import render_rows
 from .design_command import add_design_arguments, design_from_args
-from .flowfile import FlowErrors, load_flow
+from .flow import FlowErrors, check_flow, load_flow
 from .plugins import load_registry
 
 
@@ -75,40 +77,49 @@ def _target(args):
     return None
 
 
-def _params_toml(params):
-    return "".join(f"{k} = {toml_repr(v)}\n" for k, v in params.items() if v is not None)
+def _without_unset(params: dict[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in params.items() if v is not None}
 
 
-def round_trip_through_processes(target, signals, frames, folder):
-    """Run the signals through real channelizer and synthesis processes; list of SignalResult."""
-    from .supervisor import Supervisor
+def measurement_flow(target: _FlowBank, signals: list[str]) -> dict[str, Any]:
+    """A flow (as the mapping a flow file gives) that runs each signal through its own copy of the
+    target's channelizer and synthesis: ``NAME.cf32`` in, ``NAME-out.cf32`` out."""
+    blocks: dict[str, Any] = {}
+    links: list[dict[str, str]] = []
+    split_params = _without_unset(target.split.params)
+    merge_params = _without_unset(target.merge.params) if target.merge else {}
+    for name in signals:
+        blocks[f"{name}-in"] = {"type": "iq-reader", "path": f"{name}.cf32", "sample_rate": target.rate,
+                                "centre_frequency": target.centre, "metadata": "none"}
+        blocks[f"{name}-split"] = {"type": "channelizer", **split_params}
+        blocks[f"{name}-merge"] = {"type": "synthesis", **merge_params}
+        blocks[f"{name}-out"] = {"type": "iq-writer", "path": f"{name}-out.cf32", "metadata": False}
+        for a, b in ((f"{name}-in.samples", f"{name}-split.samples"),
+                     (f"{name}-split.channels", f"{name}-merge.channels"),
+                     (f"{name}-merge.samples", f"{name}-out.samples")):
+            links.append({"from": a, "to": b})
+    return {"flow": {"name": "roundtrip measurement"}, "blocks": blocks, "links": links}
+
+
+def round_trip_through_processes(target: _FlowBank, signals: list[str], frames: int,
+                                 folder: str | Path) -> tuple[list[SignalResult], int]:
+    """Run the signals through real channelizer and synthesis processes; (results, processes used)."""
+    from .supervisor import RunOutcome, Supervisor
 
     design = target.design
     length = max(frames * design.channels, 1 << 14) + 2 * design.delay
     folder = Path(folder)
-    text = ["[flow]\nname = \"roundtrip measurement\"\n"]
     inputs = {}
     for name in signals:
         x = probe_signal(name, length, design.channels)
         x.tofile(folder / f"{name}.cf32")
         inputs[name] = x
-        split_params = {k: v for k, v in target.split.params.items()}
-        merge_params = dict(target.merge.params) if target.merge else {}
-        text.append(f"[blocks.{name}-in]\ntype = \"iq-reader\"\npath = \"{name}.cf32\"\n"
-                    f"sample_rate = {target.rate!r}\ncentre_frequency = {target.centre!r}\nmetadata = \"none\"\n")
-        text.append(f"[blocks.{name}-split]\ntype = \"channelizer\"\n" + _params_toml(split_params))
-        text.append(f"[blocks.{name}-merge]\ntype = \"synthesis\"\n" + _params_toml(merge_params))
-        text.append(f"[blocks.{name}-out]\ntype = \"iq-writer\"\npath = \"{name}-out.cf32\"\nmetadata = false\n")
-        for a, b in ((f"{name}-in.samples", f"{name}-split.samples"), (f"{name}-split.channels", f"{name}-merge.channels"),
-                     (f"{name}-merge.samples", f"{name}-out.samples")):
-            text.append(f"[[links]]\nfrom = \"{a}\"\nto = \"{b}\"\n")
-    flow_path = folder / "roundtrip.toml"
-    flow_path.write_text("\n".join(text))
-    flow = load_flow(flow_path, load_registry(), output_dir=folder)
+    flow = check_flow(measurement_flow(target, signals), load_registry(), path=folder / "roundtrip.toml",
+                      output_dir=folder)
     supervisor = Supervisor(flow, output_dir=folder, quiet=True)
-    if supervisor.run() != "finished":
+    if supervisor.run() is not RunOutcome.FINISHED:
         raise ValueError("the measurement flow did not finish:\n" + json.dumps(supervisor.summary()["blocks"], indent=1))
-    pids = {s.pid for s in supervisor.blocks.values()}
+    pids = {r.pid for r in supervisor.blocks.values()}
     results = []
     for name in signals:
         y = np.fromfile(folder / f"{name}-out.cf32", np.complex64)
@@ -169,17 +180,18 @@ def run_roundtrip(args, out, log=None):
         out.write(f"round trip of {label}, {where}\n")
         out.write(f"design delay {design.delay} samples; predicted error {design.round_trip_error_db:.1f} dB "
                   f"(float64, white input)\n\n")
-        out.write(f"{'signal':<7} {'error dB':>9} {'delay':>7} {'gain dB':>10} {'phase deg':>10} "
-                  f"{'worst channel':>14} {'its error':>9}  other\n")
-        for s in report["signals"]:
+        rows = []
+        for sig in report["signals"]:
             other = []
-            if s["spurs_away_from_tones_db"] is not None:
-                other.append(f"spurs {s['spurs_away_from_tones_db']:.1f} dB")
-            if s["alias_image_level_db"] is not None:
-                other.append(f"aliases/images {s['alias_image_level_db']:.1f} dB")
-            out.write(f"{s['signal']:<7} {s['error_db']:>9.1f} {s['delay_samples']:>7} {s['gain_db']:>10.6f} "
-                      f"{s['phase_degrees']:>10.5f} {s['worst_channel']:>14} {s['worst_channel_error_db']:>9.1f}  "
-                      f"{', '.join(other)}\n")
+            if sig["spurs_away_from_tones_db"] is not None:
+                other.append(f"spurs {sig['spurs_away_from_tones_db']:.1f} dB")
+            if sig["alias_image_level_db"] is not None:
+                other.append(f"aliases/images {sig['alias_image_level_db']:.1f} dB")
+            rows.append([sig["signal"], round(sig["error_db"], 1), sig["delay_samples"], round(sig["gain_db"], 6),
+                         round(sig["phase_degrees"], 5), sig["worst_channel"],
+                         round(sig["worst_channel_error_db"], 1), ", ".join(other)])
+        out.write(render_rows(["signal", "error dB", "delay", "gain dB", "phase deg", "worst channel", "its error",
+                               "other"], rows) + "\n")
         worst_signal = max(report["signals"], key=lambda s: s["worst_channel_error_db"])
         out.write(f"\nworst channel: {worst_signal['worst_channel']} ({worst_signal['signal']}), "
                   f"{worst_signal['worst_channel_error_db']:.1f} dB: {worst_signal['worst_channel_why']}\n")
@@ -223,10 +235,8 @@ def run_quality(args, out, log=None):
         return 0
     out.write(f"channel quality of {label}, measured with {args.steps} tones per channel spacing through the "
               f"complex64 bank, against the figures computed from the taps\n\n")
-    width = max(len(r["what"]) for r in rows)
-    out.write(f"{'figure':<{width}}  {'measured':>10}  {'from taps':>10}  {'difference':>10}\n")
-    for r in rows:
-        out.write(f"{r['what']:<{width}}  {r['measured']:>10.3f}  {r['from_taps']:>10.3f}  {r['difference']:>+10.3f}\n")
+    table = [[r["what"], round(r["measured"], 3), round(r["from_taps"], 3), f"{r['difference']:+.3f}"] for r in rows]
+    out.write(render_rows(["figure", "measured", "from taps", "difference"], table) + "\n")
     return 0
 
 

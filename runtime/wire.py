@@ -11,15 +11,21 @@ payload's length. Nothing is ever unpickled or evaluated.
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import msgpack
 import numpy as np
+
+from bandloom.blocks.sample_formats import STREAM_TYPES
+
+__all__ = ["FLAG_DISCONTINUITY", "FLAG_END", "HEADER_LIMIT", "MAX_ROWS", "SAMPLE_TYPES", "VERSION", "WireError",
+           "decode_header", "decode_payload", "encode_header"]
 
 VERSION = 1
 HEADER_LIMIT = 64 * 1024
 FLAG_END = 1
 FLAG_DISCONTINUITY = 2
-SAMPLE_TYPES = {"cf32": np.dtype("<c8"), "f32": np.dtype("<f4")}
+SAMPLE_TYPES = STREAM_TYPES
 MAX_ROWS = 1 << 28
 
 _REQUIRED = {
@@ -33,8 +39,10 @@ class WireError(ValueError):
     """A message that does not follow docs/wire.md; the text says which field and why."""
 
 
-def encode_header(*, stream, seq, first_index, count, width, sample_type, sample_rate,
-                  centre_frequency, flags=0, dropped=0, channels=None, channel_frequencies=None):
+def encode_header(*, stream: str, seq: int, first_index: int, count: int, width: int, sample_type: str,
+                  sample_rate: float, centre_frequency: float, flags: int = 0, dropped: int = 0,
+                  channels: list[int] | None = None, channel_frequencies: list[float] | None = None) -> bytes:
+    """The header frame of a message (docs/wire.md), msgpack-encoded."""
     header = {
         "version": VERSION, "stream": stream, "seq": int(seq), "first_index": int(first_index),
         "count": int(count), "width": int(width), "sample_type": sample_type,
@@ -43,15 +51,15 @@ def encode_header(*, stream, seq, first_index, count, width, sample_type, sample
     }
     if channels is not None:
         header["channels"] = [int(c) for c in channels]
-        header["channel_frequencies"] = [float(f) for f in channel_frequencies]
+        header["channel_frequencies"] = [float(f) for f in channel_frequencies or ()]
     return msgpack.packb(header, use_bin_type=True)
 
 
-def _no_extensions(code, data):
+def _no_extensions(code: int, data: bytes) -> None:
     raise WireError(f"header uses msgpack extension type {code}, which the format does not allow")
 
 
-def decode_header(raw):
+def decode_header(raw: bytes | memoryview) -> dict[str, Any]:
     """Check and unpack a header frame; return the dict or raise WireError."""
     if len(raw) > HEADER_LIMIT:
         raise WireError(f"header is {len(raw)} bytes, more than the {HEADER_LIMIT}-byte limit")
@@ -94,7 +102,7 @@ def decode_header(raw):
     return header
 
 
-def decode_payload(header, payload):
+def decode_payload(header: dict[str, Any], payload: bytes | memoryview) -> np.ndarray:
     """The payload as a numpy array viewing the frame's buffer (1-D if width 1, else 2-D)."""
     dtype = SAMPLE_TYPES[header["sample_type"]]
     expected = header["count"] * header["width"] * dtype.itemsize

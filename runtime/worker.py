@@ -7,10 +7,11 @@ is requested), sends end of stream downstream, closes the block (flushing
 files) and exits 0. It ignores Ctrl-C itself: the supervisor coordinates the
 stop, so that sources end their streams and everything downstream drains.
 
-Control messages from the supervisor (PUB/SUB): ``stop`` — sources end their
-streams; ``abort`` — close everything now; ``release NAME`` — every consumer
-of block NAME has read its end of stream, so NAME may close its links.
-Statistics go back to the supervisor (PUSH/PULL) twice a second and at the end.
+Control messages from the supervisor and statistics back to it are those of
+:mod:`.control`: ``stop`` (sources end their streams), ``abort`` (close
+everything now), ``release NAME`` (every consumer of block NAME has read its
+end of stream, so NAME may close its links); statistics twice a second and
+at every change of state.
 
 Why the release: ZeroMQ counts a message as sent once it is written to the
 connection. If the sender then closes while the receiver, held back by its
@@ -22,57 +23,49 @@ its consumers have finished.
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import sys
 import time
 import traceback
-from dataclasses import asdict
 from pathlib import Path
 
-import msgpack
 import zmq
 
-from bandloom.blocks.block import BlockContext, StreamInfo
+from bandloom.blocks.block import Block, BlockContext, Output
 
 from . import wire
 from ._memory import reuse_chunk_buffers
+from .control import Control, ControlWord, StatsMessage, WorkerEvent
 from .links import Aborted, Inlet, Outlet
 from .plugins import load_registry
+from .worker_spec import WorkerSpec
+
+__all__ = ["Worker", "describe_failure", "main"]
 
 STATS_INTERVAL = 0.5
 
 
-def stream_to_dict(stream):
-    return asdict(stream)
-
-
-def stream_from_dict(data):
-    data = dict(data)
-    for key in ("channels", "channel_frequencies"):
-        data[key] = tuple(data.get(key) or ())
-    return StreamInfo(**data)
-
-
 class Worker:
-    def __init__(self, spec):
+    """One block in its own process, between its inlets and outlets (see the module doc)."""
+
+    def __init__(self, spec: WorkerSpec) -> None:
         self.spec = spec
-        self.name = spec["name"]
+        self.name = spec.name
         self.context = zmq.Context()
         self.control = self.context.socket(zmq.SUB)
         self.control.setsockopt(zmq.LINGER, 0)
         self.control.setsockopt(zmq.SUBSCRIBE, b"")
-        self.control.connect(spec["control"])
+        self.control.connect(spec.control)
         self.stats_socket = self.context.socket(zmq.PUSH)
         self.stats_socket.setsockopt(zmq.LINGER, 5000)
-        self.stats_socket.connect(spec["stats"])
+        self.stats_socket.connect(spec.stats)
         self.stop = False
         self.abort = False
         self.released = False
-        self.inlets = []
-        self.outlets = {}
-        self.block = None
+        self.inlets: list[Inlet] = []
+        self.outlets: dict[str, list[Outlet]] = {}
+        self.block: Block | None = None
         self.last_stats = 0.0
         self.rows_in = 0
         self.rows_out = 0
@@ -80,81 +73,81 @@ class Worker:
         self.parent = os.getppid()
 
     # -- control and statistics -------------------------------------------------------------
-    def poll_control(self):
+    def poll_control(self) -> bool:
+        """Read what the supervisor said; True once the run is being aborted."""
         if os.getppid() != self.parent:
             self.abort = True          # the supervisor is gone: nobody will ever stop us
         while True:
             try:
-                message = self.control.recv(zmq.NOBLOCK)
+                message = Control.decode(self.control.recv(zmq.NOBLOCK))
             except zmq.Again:
                 break
-            if message == b"abort":
+            if message is None:
+                continue
+            if message.word is ControlWord.ABORT:
                 self.abort = True
-            elif message == b"release " + self.name.encode():
+            elif message.word is ControlWord.RELEASE and message.block == self.name:
                 self.released = True
-            elif message == b"stop":
+            elif message.word is ControlWord.STOP:
                 if not self.stop and self.block is not None and self.block.is_source:
                     self.block.stop_requested()
                 self.stop = True
         return self.abort
 
-    def send_stats(self, event="stats", **extra):
-        message = {
-            "event": event, "block": self.name, "pid": os.getpid(), "time": time.monotonic() - self.started,
-            "rows_in": self.rows_in, "rows_out": self.rows_out,
-            "inputs": {str(i.id): i.stats() for i in self.inlets},
-            "outputs": {str(o.id): o.stats() for outs in self.outlets.values() for o in outs},
-        }
+    def send_stats(self, event: WorkerEvent = WorkerEvent.STATS, *, report: list[str] | None = None,
+                   message: str = "") -> None:
         progress = self.block.progress() if self.block is not None and self.block.is_source else None
-        if progress:
-            message["progress"] = [int(progress[0]), int(progress[1])]
-        message.update(extra)
-        self.stats_socket.send(msgpack.packb(message, use_bin_type=True))
+        stats = StatsMessage(
+            event=event, block=self.name, pid=os.getpid(), time=time.monotonic() - self.started,
+            rows_in=self.rows_in, rows_out=self.rows_out,
+            inputs={i.id: i.stats() for i in self.inlets},
+            outputs={o.id: o.stats() for outs in self.outlets.values() for o in outs},
+            progress=(int(progress[0]), int(progress[1])) if progress else None,
+            report=report or [], message=message)
+        self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 
-    def maybe_stats(self):
+    def maybe_stats(self) -> None:
         if time.monotonic() - self.last_stats >= STATS_INTERVAL:
             self.poll_control()
             self.send_stats()
 
     # -- set up ------------------------------------------------------------------------------
-    def build(self):
+    def build(self) -> Block:
         spec = self.spec
-        registry = load_registry(only=spec["type"])
-        cls = registry.types.get(spec["type"])
+        registry = load_registry(only=spec.type_name)
+        cls = registry.types.get(spec.type_name)
         if cls is None:
-            raise RuntimeError(f"block type {spec['type']!r} is not installed here")
-        context = BlockContext(self.name, Path(spec["flow_path"]), Path(spec["output_dir"]),
-                               spec.get("placeholders", {}))
-        self.block = cls(spec["params"], context)
-        inputs = {port: stream_from_dict(i["stream"]) for port, i in spec["inputs"].items()}
-        self.block.output_streams(dict(inputs))          # validates again, in this process
-        for port, i in spec["inputs"].items():
-            i = dict(i, stream=inputs[port])
-            self.inlets.append(Inlet(self.context, i, port))
-        for port, outs in spec["outputs"].items():
-            self.outlets[port] = [Outlet(self.context, dict(o, stream=stream_from_dict(o["stream"])),
-                                         self.poll_control) for o in outs]
-        self.block.start(inputs)
-        self.send_stats("hello")
+            raise RuntimeError(f"block type {spec.type_name!r} is not installed here")
+        context = BlockContext(self.name, Path(spec.flow_path), Path(spec.output_dir), spec.placeholders)
+        block = self.block = cls(spec.params, context)
+        inputs = {port: link.stream for port, link in spec.inputs.items()}
+        block.output_streams(dict(inputs))          # validates again, in this process
+        for port, link in spec.inputs.items():
+            self.inlets.append(Inlet(self.context, link, port))
+        for port, links in spec.outputs.items():
+            self.outlets[port] = [Outlet(self.context, link, self.poll_control) for link in links]
+        block.start(inputs)
+        self.send_stats(WorkerEvent.HELLO)
+        return block
 
     # -- moving chunks -----------------------------------------------------------------------
-    def emit(self, produced):
+    def emit(self, produced: Output | None) -> None:
         for port, chunks in (produced or {}).items():
             for chunk in chunks if isinstance(chunks, list) else [chunks]:
                 self.rows_out += chunk.count
                 for outlet in self.outlets.get(port, []):
                     outlet.send(chunk)
 
-    def run_source(self):
+    def run_source(self, block: Block) -> None:
         while not self.poll_control():
-            produced = self.block.produce()
+            produced = block.produce()
             if produced is None:
                 break
             self.emit(produced)
             self.maybe_stats()
 
-    def run_consumer(self):
+    def run_consumer(self, block: Block) -> None:
         poller = zmq.Poller()
         by_socket = {}
         for inlet in self.inlets:
@@ -169,40 +162,41 @@ class Worker:
                 try:
                     chunk = inlet.receive()
                 except wire.WireError as error:
-                    raise RuntimeError(f"link {inlet.spec['label']}: bad message: {error}") from None
+                    raise RuntimeError(f"link {inlet.spec.label}: bad message: {error}") from None
                 if chunk is not None:
                     self.rows_in += chunk.count
-                    self.emit(self.block.consume(inlet.port, chunk))
+                    self.emit(block.consume(inlet.port, chunk))
                 if inlet.ended:
                     open_inlets.discard(inlet)
                     poller.unregister(sock)
             self.maybe_stats()
-        self.emit(self.block.finish())
+        self.emit(block.finish())
 
-    def run(self):
-        self.build()
-        if self.block.is_source:
-            self.run_source()
+    def run(self) -> None:
+        block = self.build()
+        if block.is_source:
+            self.run_source(block)
         else:
-            self.run_consumer()
+            self.run_consumer(block)
         if not self.abort:
             for port, outs in self.outlets.items():
-                final = self.block.end_index(port)
+                final = block.end_index(port)
                 for outlet in outs:
                     outlet.end(final)
             self.wait_for_release()
 
-    def wait_for_release(self):
+    def wait_for_release(self) -> None:
         """Keep the links open until the consumers have read everything (see the module doc)."""
-        if not any(o.spec.get("endpoint", "").startswith("ipc://") and not o.spec.get("bind")
+        if not any(o.spec.endpoint.startswith("ipc://") and not o.spec.bind
                    for outs in self.outlets.values() for o in outs):
             return
-        self.send_stats("ending")
+        self.send_stats(WorkerEvent.ENDING)
         while not self.released and not self.poll_control():
             time.sleep(0.02)
 
-    def close(self, event, **extra):
-        report = []
+    def close(self, event: WorkerEvent, *, message: str = "") -> None:
+        """Close the block (flushing its files), send the last statistics, close every socket."""
+        report: list[str] = []
         if self.block is not None:
             try:
                 self.block.close()
@@ -210,44 +204,49 @@ class Worker:
             except Exception as error:  # closing must not hide the run's own outcome
                 report = [f"closing failed: {error}"]
         try:
-            self.send_stats(event, report=report, **extra)
+            self.send_stats(event, report=report, message=message)
         except zmq.ZMQError:
             pass
         for inlet in self.inlets:
             inlet.close()
         for outs in self.outlets.values():
             for outlet in outs:
-                outlet.close(discard=event != "done")
+                outlet.close(discard=event is not WorkerEvent.DONE)
         self.control.close()
         self.stats_socket.close(linger=5000)
         self.context.term()
 
 
-def main():
+def describe_failure(error: BaseException) -> str:
+    """One line for a block's failure: the file and reason for OS errors, the text of value errors."""
+    if isinstance(error, OSError) and error.filename:
+        return f"{error.filename}: {error.strerror}"
+    if isinstance(error, (ValueError, OSError)):
+        return str(error)
+    return f"{type(error).__name__}: {error}"
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m bandloom.runtime.worker SPEC.json``: run one block; 0 when done or aborted, 1 on failure."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     reuse_chunk_buffers()
-    spec = json.loads(Path(sys.argv[1]).read_text())
+    args = sys.argv[1:] if argv is None else argv
+    spec = WorkerSpec.from_json(Path(args[0]).read_text())
     worker = Worker(spec)
     try:
         worker.run()
     except Aborted:
-        worker.close("aborted")
+        worker.close(WorkerEvent.ABORTED)
         return 0
     except Exception as error:
-        if isinstance(error, OSError) and error.filename:
-            message = f"{error.filename}: {error.strerror}"
-        elif isinstance(error, (ValueError, OSError)):
-            message = str(error)
-        else:
-            message = f"{type(error).__name__}: {error}"
-        detail = traceback.format_exc() if os.environ.get("BANDLOOM_DEBUG") else ""
+        message = describe_failure(error)
         print(f"bandloom: block {worker.name!r} failed: {message}", file=sys.stderr)
-        if detail:
-            print(detail, file=sys.stderr)
-        worker.close("error", message=message)
+        if os.environ.get("BANDLOOM_DEBUG"):
+            print(traceback.format_exc(), file=sys.stderr)
+        worker.close(WorkerEvent.ERROR, message=message)
         return 1
-    worker.close("aborted" if worker.abort else "done")
+    worker.close(WorkerEvent.ABORTED if worker.abort else WorkerEvent.DONE)
     return 0
 
 

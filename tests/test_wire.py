@@ -8,6 +8,7 @@ import zmq
 from bandloom.blocks.block import StreamInfo
 from bandloom.runtime import wire
 from bandloom.runtime.links import Inlet
+from bandloom.runtime.worker_spec import LinkSpec
 
 
 def header(**changes):
@@ -60,7 +61,7 @@ def test_inlet_names_the_link_and_refuses_wrong_shape(tmp_path):
     ctx = zmq.Context()
     stream = StreamInfo("samples", "cf32", 48000.0)
     endpoint = f"ipc://{tmp_path}/x"
-    inlet = Inlet(ctx, {"link": 0, "endpoint": endpoint, "stream": stream, "label": "a.b -> c.d"}, "samples")
+    inlet = Inlet(ctx, LinkSpec(link=0, endpoint=endpoint, stream=stream, label="a.b -> c.d", bind=True), "samples")
     push = ctx.socket(zmq.PUSH)
     push.connect(endpoint)
     try:

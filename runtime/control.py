@@ -1,0 +1,183 @@
+"""The runtime's own messages: control words (supervisor to workers), events and statistics (workers
+to supervisor), and the life cycle of a block as the supervisor sees it.
+
+Control goes over one PUB socket that every worker subscribes to; each
+message is one word, or ``release NAME`` for one block. Statistics go back
+over PUSH/PULL as a msgpack map (:class:`StatsMessage`), twice a second and
+at every change of state. Both sockets live in the run's private folder.
+
+Block states change only through :data:`TRANSITIONS`: a worker's event, or
+the supervisor seeing the process end, moves a block from one state to the
+next; anything the table does not name leaves the state as it is.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from enum import Enum
+from typing import Any
+
+import msgpack
+
+__all__ = ["BlockState", "Control", "ControlWord", "InletStats", "OutletStats", "ProcessEnd", "StatsMessage",
+           "TERMINAL_STATES", "TRANSITIONS", "WorkerEvent", "next_state"]
+
+
+class ControlWord(str, Enum):
+    """What the supervisor tells workers."""
+
+    STOP = "stop"          # sources end their streams; the rest drains
+    ABORT = "abort"        # close everything now
+    RELEASE = "release"    # every consumer of the named block has finished: it may close its links
+
+
+@dataclass(frozen=True)
+class Control:
+    """One control message: a word, and for ``release`` the block it is for.
+
+    >>> Control.decode(Control(ControlWord.RELEASE, "split").encode())
+    Control(word=<ControlWord.RELEASE: 'release'>, block='split')
+    """
+
+    word: ControlWord
+    block: str | None = None
+
+    def encode(self) -> bytes:
+        return self.word.value.encode() + (b" " + self.block.encode() if self.block else b"")
+
+    @classmethod
+    def decode(cls, raw: bytes) -> Control | None:
+        """The message, or None for bytes that are not one (ignored by workers)."""
+        word, _, block = raw.decode(errors="replace").partition(" ")
+        try:
+            return cls(ControlWord(word), block or None)
+        except ValueError:
+            return None
+
+
+class WorkerEvent(str, Enum):
+    """What a worker reports about itself (the ``event`` of a statistics message)."""
+
+    HELLO = "hello"        # built its block and opened its links
+    STATS = "stats"        # still working
+    ENDING = "ending"      # sent its ends of stream; waits to be released
+    DONE = "done"          # finished and closed
+    ABORTED = "aborted"    # stopped by an abort
+    ERROR = "error"        # failed; the message says why
+
+
+class ProcessEnd(str, Enum):
+    """How the supervisor saw a worker process end."""
+
+    CLEAN = "exit status 0"
+    FAULT = "exit status other than 0, or a signal"
+
+
+class BlockState(str, Enum):
+    """A block's state in the supervisor."""
+
+    STARTING = "starting"
+    RUNNING = "running"
+    ENDING = "ending"
+    DONE = "done"
+    ABORTED = "aborted"
+    ERROR = "error"        # reported an error; its process has not ended yet
+    FAILED = "failed"      # reported an error, and its process ended
+    DIED = "died"          # its process ended without saying why
+
+    @property
+    def is_failure(self) -> bool:
+        return self in (BlockState.FAILED, BlockState.DIED)
+
+
+TERMINAL_STATES = frozenset({BlockState.DONE, BlockState.ABORTED, BlockState.FAILED, BlockState.DIED})
+
+_S, _E, _P = BlockState, WorkerEvent, ProcessEnd
+_LIVE = (_S.STARTING, _S.RUNNING, _S.ENDING)
+
+#: (state, what happened) -> the next state.
+TRANSITIONS: Mapping[tuple[BlockState, WorkerEvent | ProcessEnd], BlockState] = {
+    **{(s, e): _S.RUNNING for s in (_S.STARTING, _S.RUNNING) for e in (_E.HELLO, _E.STATS)},
+    **{(s, _E.ENDING): _S.ENDING for s in _LIVE},
+    **{(s, _E.DONE): _S.DONE for s in _LIVE},
+    **{(s, _E.ABORTED): _S.ABORTED for s in _LIVE},
+    **{(s, _E.ERROR): _S.ERROR for s in _LIVE},
+    **{(s, _P.CLEAN): _S.DONE for s in _LIVE},
+    **{(s, _P.FAULT): _S.DIED for s in _LIVE},
+    (_S.ERROR, _P.CLEAN): _S.FAILED,
+    (_S.ERROR, _P.FAULT): _S.FAILED,
+}
+
+
+def next_state(state: BlockState, happened: WorkerEvent | ProcessEnd) -> BlockState:
+    """The state after ``happened``; unchanged when the table has no such step.
+
+    >>> next_state(BlockState.RUNNING, WorkerEvent.ERROR), next_state(BlockState.ERROR, ProcessEnd.CLEAN)
+    (<BlockState.ERROR: 'error'>, <BlockState.FAILED: 'failed'>)
+    """
+    return TRANSITIONS.get((state, happened), state)
+
+
+@dataclass(frozen=True, kw_only=True)
+class OutletStats:
+    """Counters of the sending end of one link (rows are samples, or frames of a channels stream)."""
+
+    rows: int = 0                # delivered to the socket
+    messages: int = 0
+    seq: int = 0                 # sequence number of the next message
+    dropped_rows: int = 0        # dropped here because the link was full (when_full = "drop")
+    dropped_messages: int = 0
+    discontinuities: int = 0     # messages flagged as following a gap
+    missing_rows: int = 0        # lost before this link, counted in the headers
+    next_index: int = 0          # absolute index after the last row sent
+    blocked_seconds: float = 0.0
+
+
+@dataclass(frozen=True, kw_only=True)
+class InletStats:
+    """Counters of the receiving end of one link."""
+
+    rows: int = 0
+    messages: int = 0
+    seq: int = -1                # sequence number of the last message read
+    gaps: int = 0
+    missing: int = 0
+
+
+@dataclass(frozen=True, kw_only=True)
+class StatsMessage:
+    """A worker's report: its event, counters per link id, and (at the end) its report lines.
+
+    >>> m = StatsMessage(event=WorkerEvent.DONE, block="keep", pid=7, time=1.5, outputs={3: OutletStats(rows=9)})
+    >>> StatsMessage.decode(m.encode()) == m
+    True
+    """
+
+    event: WorkerEvent
+    block: str
+    pid: int
+    time: float                  # seconds since the worker started
+    rows_in: int = 0
+    rows_out: int = 0
+    inputs: dict[int, InletStats] = field(default_factory=dict)
+    outputs: dict[int, OutletStats] = field(default_factory=dict)
+    progress: tuple[int, int] | None = None
+    report: list[str] = field(default_factory=list)
+    message: str = ""
+
+    def encode(self) -> bytes:
+        values = asdict(self)
+        values["event"] = self.event.value
+        return msgpack.packb(values, use_bin_type=True)
+
+    @classmethod
+    def decode(cls, raw: bytes) -> StatsMessage:
+        """Messages come from the run's own workers over a private socket; still, unpack with limits."""
+        values: dict[str, Any] = msgpack.unpackb(raw, raw=False, strict_map_key=False, max_bin_len=0)
+        values["event"] = WorkerEvent(values["event"])
+        values["inputs"] = {int(k): InletStats(**v) for k, v in values.get("inputs", {}).items()}
+        values["outputs"] = {int(k): OutletStats(**v) for k, v in values.get("outputs", {}).items()}
+        if values.get("progress") is not None:
+            values["progress"] = tuple(values["progress"])
+        return cls(**values)

@@ -1,0 +1,21 @@
+"""Flow files: read, check (every problem at once) and expand into block processes and links.
+
+The format is specified in docs/flow-files.md. One concept a module:
+
+* :mod:`.problems` — a problem's place and wording (key paths, "did you mean", TOML syntax errors);
+* :mod:`.locator` — the line of a key path in the file's text;
+* :mod:`.declarations` — the ``[flow]``, ``[blocks.NAME]`` and ``[[links]]`` tables, each on its own,
+  with the link options declared like block parameters;
+* :mod:`.selection` — the channel-selection language;
+* :mod:`.graph` — producers before consumers (graphlib);
+* :mod:`.expansion` — each input's producer, per-channel copies, output streams, links;
+* :mod:`.model` — the result: :class:`Flow`, :class:`Instance`, :class:`Link`;
+* :mod:`.loading` — :func:`load_flow` (a file) and :func:`check_flow` (a mapping made in code).
+"""
+
+from .loading import check_flow, load_flow
+from .model import Flow, Instance, Link, LinkOptions, WhenFull
+from .problems import FlowErrors, Problem, format_key_path
+
+__all__ = ["Flow", "FlowErrors", "Instance", "Link", "LinkOptions", "Problem", "WhenFull", "check_flow",
+           "format_key_path", "load_flow"]

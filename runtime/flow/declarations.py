@@ -1,0 +1,358 @@
+"""Reading a flow's tables: ``[flow]``, ``[blocks.NAME]`` and ``[[links]]``, each checked on its own.
+
+What comes out is declarations (a block type with converted parameters, and
+its per-channel rule) and raw links (two port references or an endpoint,
+their selection and options); nothing here knows about streams yet. Link
+options are declared in :data:`LINK_OPTIONS` like block parameters and
+converted by the same code.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import re
+import string
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from bandloom.blocks.block import Block, Param, toml_repr
+
+from ..plugins import Registry
+from .model import LinkOptions, WhenFull
+from .problems import KeyPath, ProblemLog, did_you_mean, known_names
+
+__all__ = ["Declaration", "FLOW_KEYS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS", "PLACEHOLDERS",
+           "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
+
+TOP_LEVEL_KEYS = ("flow", "blocks", "links")
+FLOW_KEYS = ("name", "description")
+PER_CHANNEL_KEYS = ("from", "select", "input", "tolerance")
+NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_-]*$")
+PLACEHOLDERS = ("channel", "frequency", "frequency_mhz")
+
+TOLERANCE = Param("tolerance", "quantity", "how far a frequency in 'select' may be from a channel centre "
+                  "(default 5 % of the spacing)", default=None, unit="Hz", minimum=0, rule="a frequency >= 0")
+
+#: The options of a link, converted like block parameters; each becomes a field of LinkOptions.
+LINK_OPTIONS: tuple[Param, ...] = (
+    Param("queue", "int", "messages held at each end of the link", default=8, minimum=1, maximum=100000,
+          rule="a whole number of messages from 1 to 100000"),
+    Param("when_full", "choice", "what a full link does", default="wait", choices=tuple(w.value for w in WhenFull),
+          rule="'wait' (lossless, slows the producer) or 'drop' (counted, flagged drops)"),
+    Param("insecure", "bool", "send an endpoint reachable from other machines in the clear", default=False),
+    Param("keys", "str", "folder made by 'bandloom keys' (endpoints)", default=None,
+          rule="a folder made by 'bandloom keys' holding server.key_secret"),
+    TOLERANCE,
+)
+#: The keys that say what a link joins.
+LINK_ENDS = ("from", "to", "endpoint", "select")
+LINK_KEYS = LINK_ENDS + tuple(p.name for p in LINK_OPTIONS)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Declaration:
+    """One ``[blocks.NAME]`` table, read: its type, its converted parameters, its per-channel rule."""
+
+    name: str
+    cls: type[Block]
+    params: dict[str, Any]
+    per_channel: dict[str, Any] | None
+    ok: bool                                                          # declared without problems
+    feeds: list[tuple[int | str, str]] = field(default_factory=list)  # (links index or "per_channel", port)
+
+
+@dataclass(frozen=True, kw_only=True)
+class RawLink:
+    """One ``[[links]]`` table, read: the ends it names, its selection and its options."""
+
+    index: int
+    source: str
+    source_port: str
+    target: str | None
+    target_port: str | None
+    endpoint: str | None
+    select: Any
+    options: LinkOptions
+
+
+def parse_port_ref(text: object) -> tuple[str, str] | None:
+    """``"block.port"`` as (block, port), or None when it is not written so."""
+    if not isinstance(text, str) or text.count(".") != 1:
+        return None
+    block, port = text.split(".")
+    return (block, port) if block and port else None
+
+
+def endpoint_problem(text: str) -> tuple[str | None, bool]:
+    """(what is wrong with an endpoint or None, whether only this machine can reach it)."""
+    m = re.match(r"^tcp://(\[[^\]]+\]|[^:/\[\]]+):(\d{1,5})$", text)
+    if m:
+        host = m.group(1).strip("[]")
+        port = int(m.group(2))
+        if not 1 <= port <= 65535:
+            return f"port {port} is outside 1 .. 65535", False
+        if host == "localhost":
+            return None, True
+        if host == "*":
+            return None, False
+        try:
+            return None, ipaddress.ip_address(host).is_loopback
+        except ValueError:
+            return None, False
+    m = re.match(r"^ipc://(.+)$", text)
+    if m:
+        if len(m.group(1).encode()) > 100:
+            return "ipc paths are limited to about 100 bytes; use a shorter path", True
+        return None, True
+    return (f"expected 'tcp://HOST:PORT' (for example 'tcp://127.0.0.1:5601') or 'ipc://PATH', "
+            f"got {toml_repr(text)}"), False
+
+
+def convert_option(log: ProblemLog, at: KeyPath, param: Param, table: dict[str, Any]) -> tuple[bool, Any]:
+    """(ok, value) of option ``param`` in ``table``: its default when absent; a problem when wrong."""
+    if param.name not in table:
+        return True, param.default
+    try:
+        return True, param.convert(table[param.name])
+    except ValueError as error:
+        log.add(at + (param.name,), str(error))
+        return False, None
+
+
+class _TableReader:
+    def __init__(self, log: ProblemLog, registry: Registry, flow_dir: Path) -> None:
+        self.log = log
+        self.registry = registry
+        self.flow_dir = flow_dir
+        self.claimed: set[tuple[str, str | None]] = set()    # (block, input port) a link names, valid or not
+
+    # -- [blocks.NAME] ---------------------------------------------------------------------
+    def declaration(self, name: str, table: Any) -> Declaration | None:
+        before = len(self.log)
+        read = self._declaration(name, table)
+        if read is None:
+            return None
+        cls, params, per_channel = read
+        return Declaration(name=name, cls=cls, params=params, per_channel=per_channel, ok=len(self.log) == before)
+
+    def _declaration(self, name: str, table: Any) -> tuple[type[Block], dict, dict | None] | None:
+        log = self.log
+        if not NAME_PATTERN.match(name):
+            log.add(("blocks", name), "block names start with a letter and use letters, digits, '-' and '_'")
+            return None
+        if not isinstance(table, dict):
+            log.add(("blocks", name), f"expected a table [blocks.{name}] with a type, got {toml_repr(table)}")
+            return None
+        type_name = table.get("type")
+        if type_name is None:
+            log.add(("blocks", name), f"missing 'type'; block types: {known_names(self.registry.types)}")
+            return None
+        cls = self.registry.types.get(type_name)
+        if cls is None:
+            log.add(("blocks", name, "type"), f"unknown block type {type_name!r}"
+                    f"{did_you_mean(type_name, self.registry.types)}; 'bandloom blocks' lists the types")
+            return None
+        params: dict[str, Any] = {}
+        declared = {p.name: p for p in cls.parameters}
+        for key, value in table.items():
+            if key in ("type", "per_channel"):
+                continue
+            param = declared.get(key)
+            if param is None:
+                log.add(("blocks", name, key), f"{type_name} has no parameter {key!r}"
+                        f"{did_you_mean(key, declared)}; its parameters: {known_names(declared)}")
+                continue
+            try:
+                params[key] = param.convert(value)
+            except ValueError as error:
+                log.add(("blocks", name, key), str(error))
+        for param in cls.parameters:
+            if param.name not in params and param.name not in table:
+                if param.required:
+                    log.add(("blocks", name), f"missing required parameter {param.name!r} "
+                            f"({param.describe_type()}: {param.doc})")
+                else:
+                    params[param.name] = param.default
+        per_channel = self.per_channel(name, table.get("per_channel"))
+        for p in cls.parameters:
+            if p.kind == "output-path" and isinstance(params.get(p.name), str):
+                self.placeholders(name, p.name, params[p.name], per_channel is not None)
+        return cls, params, per_channel
+
+    def per_channel(self, name: str, rule: Any) -> dict[str, Any] | None:
+        if rule is None:
+            return None
+        at: KeyPath = ("blocks", name, "per_channel")
+        if not isinstance(rule, dict):
+            self.log.add(at, "expected an inline table such as { from = \"split.channels\", select = \"0..7\" }")
+            return None
+        for key in rule:
+            if key not in PER_CHANNEL_KEYS:
+                self.log.add(at, f"unknown key {key!r}; expected "
+                             f"{known_names(PER_CHANNEL_KEYS)}{did_you_mean(key, PER_CHANNEL_KEYS)}")
+        if "from" not in rule:
+            self.log.add(at, "missing 'from' (for example \"split.channels\")")
+            return None
+        return rule
+
+    def placeholders(self, name: str, key: str, text: str, per_channel: bool) -> None:
+        allowed = PLACEHOLDERS if per_channel else ()
+        at: KeyPath = ("blocks", name, key)
+        try:
+            fields = [f for _, f, _, _ in string.Formatter().parse(text) if f is not None]
+        except ValueError as error:
+            self.log.add(at, f"bad placeholder in {text!r}: {error}")
+            return
+        for f in fields:
+            if f in allowed:
+                continue
+            if f in PLACEHOLDERS:
+                self.log.add(at, f"{{{f}}} is only known in per-channel blocks "
+                             f"(add per_channel = {{ from = ..., select = ... }})")
+            else:
+                self.log.add(at, f"unknown placeholder {{{f}}}; known: "
+                             f"{', '.join('{' + p + '}' for p in PLACEHOLDERS)}{did_you_mean(f, PLACEHOLDERS)}")
+
+    # -- [[links]] ---------------------------------------------------------------------------
+    def link(self, i: int, table: Any, decls: dict[str, Declaration], declared_names: set[str]) -> RawLink | None:
+        log = self.log
+        at: KeyPath = ("links", i)
+        if not isinstance(table, dict):
+            log.add(at, "expected a table with 'from' and 'to'")
+            return None
+        for key in table:
+            if key not in LINK_KEYS:
+                log.add(at + (key,), f"unknown key; links take {known_names(LINK_KEYS)}{did_you_mean(key, LINK_KEYS)}")
+        ok = True
+        source = self.port_ref(at + ("from",), table.get("from"), decls, declared_names, "output")
+        target = None
+        endpoint = None
+        if "to" in table and "endpoint" in table:
+            log.add(at, "give 'to' (a block input) or 'endpoint' (for an outside program), not both")
+            ok = False
+        elif "endpoint" in table:
+            endpoint = table["endpoint"]
+            ok = self.endpoint(at, endpoint, table)
+        else:
+            target = self.port_ref(at + ("to",), table.get("to"), decls, declared_names, "input")
+            named = parse_port_ref(table.get("to"))
+            if target:
+                self.claimed.add(target)
+            elif named and named[0] in decls:
+                self.claimed.add((named[0], None))            # a broken link meant to feed it
+            if target and decls.get(target[0]) and decls[target[0]].per_channel is not None:
+                log.add(at + ("to",), f"{target[0]} is per-channel; it is fed by its per_channel rule, not by links")
+                target = None
+        if source is None or (target is None and endpoint is None):
+            ok = False
+        values: dict[str, Any] = {}
+        for param in LINK_OPTIONS:
+            good, values[param.name] = convert_option(log, at, param, table)
+            if param.name == "keys" and good and values["keys"] is not None:
+                good, values["keys"] = self.keys_folder(at, param, values["keys"], endpoint)
+            ok = ok and (good or param is TOLERANCE)    # a bad tolerance is reported, the link still made
+        if not ok or source is None:
+            return None
+        values["when_full"] = WhenFull(values["when_full"])
+        return RawLink(index=i, source=source[0], source_port=source[1],
+                       target=target[0] if target else None, target_port=target[1] if target else None,
+                       endpoint=endpoint, select=table.get("select"), options=LinkOptions(**values))
+
+    def keys_folder(self, at: KeyPath, param: Param, keys: str, endpoint: str | None) -> tuple[bool, str | None]:
+        folder = self.flow_dir / keys
+        if not (folder / "server.key_secret").is_file():
+            self.log.add(at + ("keys",), f"expected {param.rule}, got {toml_repr(keys)}")
+            return False, None
+        if endpoint is None:
+            self.log.add(at + ("keys",), "keys apply to links with an endpoint")
+            return False, None
+        return True, str(folder)
+
+    def endpoint(self, at: KeyPath, endpoint: Any, table: dict[str, Any]) -> bool:
+        if not isinstance(endpoint, str):
+            self.log.add(at + ("endpoint",), f"expected text such as 'tcp://127.0.0.1:5601', got {toml_repr(endpoint)}")
+            return False
+        message, loopback = endpoint_problem(endpoint)
+        if message:
+            self.log.add(at + ("endpoint",), message)
+            return False
+        if not loopback and not table.get("insecure") and not table.get("keys"):
+            self.log.add(at + ("endpoint",), f"{endpoint} is reachable from other machines: give "
+                         f"keys = \"FOLDER\" (see 'bandloom keys') to encrypt and authenticate it, or "
+                         f"insecure = true to send it in the clear")
+            return False
+        return True
+
+    def port_ref(self, at: KeyPath, text: Any, decls: dict[str, Declaration], declared_names: set[str],
+                 direction: str) -> tuple[str, str] | None:
+        if text is None:
+            self.log.add(at[:-1], f"missing '{at[-1]}' (written \"block.port\")")
+            return None
+        ref = parse_port_ref(text)
+        if ref is None:
+            self.log.add(at, f"expected \"block.port\", got {toml_repr(text)}")
+            return None
+        block, port = ref
+        decl = decls.get(block)
+        if decl is None:
+            if block not in declared_names:
+                self.log.add(at, f"no block named {block!r}{did_you_mean(block, declared_names)}")
+            return None
+        ports = decl.cls.outputs if direction == "output" else decl.cls.inputs
+        names = [p.name for p in ports]
+        if port not in names:
+            kind = "outputs" if direction == "output" else "inputs"
+            self.log.add(at, f"{decl.cls.type_name} block {block!r} has no {direction} port {port!r}"
+                         f"{did_you_mean(port, names)}; its {kind}: {known_names(names)}")
+            return None
+        return ref
+
+
+@dataclass(frozen=True, kw_only=True)
+class Tables:
+    """What :func:`read_tables` read: the flow's own keys, its declarations and links, and which
+    block inputs some link names (valid or not, so an input is not also called unconnected)."""
+
+    meta: dict[str, str]
+    declarations: dict[str, Declaration]
+    links: list[RawLink]
+    claimed: set[tuple[str, str | None]]
+
+
+def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_dir: Path) -> Tables:
+    """Read and check the parsed TOML's tables one by one; problems go to ``log``."""
+    reader = _TableReader(log, registry, flow_dir)
+    for key in data:
+        if key not in TOP_LEVEL_KEYS:
+            log.add((key,), f"unknown top-level table; expected one of {known_names(TOP_LEVEL_KEYS)}"
+                    f"{did_you_mean(key, TOP_LEVEL_KEYS)}")
+    meta = data.get("flow", {})
+    if not isinstance(meta, dict):
+        log.add(("flow",), "expected a table with name and description")
+        meta = {}
+    for key, value in meta.items():
+        if key not in FLOW_KEYS:
+            log.add(("flow", key), f"unknown key; expected one of {known_names(FLOW_KEYS)}{did_you_mean(key, FLOW_KEYS)}")
+        elif not isinstance(value, str):
+            log.add(("flow", key), f"expected text, got {toml_repr(value)}")
+    blocks = data.get("blocks")
+    if not isinstance(blocks, dict) or not blocks:
+        log.add(("blocks",), "a flow needs at least one block: add a [blocks.NAME] table with a type")
+        blocks = {}
+    decls = {}
+    for name, table in blocks.items():
+        decl = reader.declaration(name, table)
+        if decl:
+            decls[name] = decl
+    raw_links = data.get("links", [])
+    if not isinstance(raw_links, list):
+        log.add(("links",), "expected an array of tables, written [[links]]")
+        raw_links = []
+    links = []
+    for i, table in enumerate(raw_links):
+        link = reader.link(i, table, decls, set(blocks))
+        if link:
+            links.append(link)
+    return Tables(meta={k: v for k, v in meta.items() if isinstance(v, str)}, declarations=decls, links=links,
+                  claimed=reader.claimed)

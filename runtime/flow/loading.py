@@ -1,0 +1,65 @@
+"""Checking a whole flow: from a file (``load_flow``) or from a mapping made in code (``check_flow``)."""
+
+from __future__ import annotations
+
+import tomllib
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from ..plugins import Registry
+from .declarations import read_tables
+from .expansion import check_inputs, expand, wiring_order
+from .locator import KeyLocator
+from .model import Flow
+from .problems import FlowErrors, Problem, ProblemLog, syntax_problem
+
+__all__ = ["check_flow", "load_flow"]
+
+
+def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Path, text: str = "",
+               output_dir: str | Path | None = None) -> Flow:
+    """Check a flow given as the mapping tomllib would make of it; return a Flow or raise FlowErrors.
+
+    ``path`` names the flow in messages and is where relative input paths and
+    key folders start from; ``text``, when given, is the TOML the mapping came
+    from, so that problems carry line numbers.
+    """
+    path = Path(path)
+    log = ProblemLog(path, KeyLocator(text).find)
+    tables = read_tables(dict(mapping), log, registry, path.parent)
+    decls, links = tables.declarations, tables.links
+    order = wiring_order(log, decls, links)
+    check_inputs(log, decls, links, tables.claimed)
+    instances, expanded = ({}, [])
+    if order is not None:
+        # streams are worked out for every block that was declared well, so that their
+        # problems are reported along with the others
+        instances, expanded = expand(log, decls, links, order, flow_path=path,
+                                     output_dir=Path(output_dir) if output_dir else Path.cwd())
+    for attribute, what in (("uses_stdin", "read standard input"), ("uses_stdout", "write standard output")):
+        users = [i for i in instances.values() if getattr(i.cls, attribute)]
+        if len(users) > 1:
+            log.add(("blocks", users[1].declared), f"{len(users)} blocks ({', '.join(i.name for i in users)}) "
+                    f"{what}; a run has one, so only one block may")
+    if log.problems:
+        raise FlowErrors(log.problems)
+    return Flow(path=path, name=tables.meta.get("name", path.stem), description=tables.meta.get("description", ""),
+                instances=instances, links=expanded)
+
+
+def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | None = None) -> Flow:
+    """Parse and check a flow file; return a Flow or raise FlowErrors with every problem."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as error:
+        raise FlowErrors([Problem(str(path), "", f"cannot read the flow file: {error.strerror}")]) from None
+    except UnicodeDecodeError as error:
+        raise FlowErrors([Problem(str(path), "", f"the flow file is not UTF-8 text ({error.reason} at byte "
+                                                 f"{error.start})")]) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as error:
+        raise FlowErrors([syntax_problem(path, error)]) from None
+    return check_flow(data, registry, path=path, text=text, output_dir=output_dir)

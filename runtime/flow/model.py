@@ -1,0 +1,106 @@
+"""A checked flow: block instances (one process each) and the links between them.
+
+These are what :func:`~bandloom.runtime.flow.load_flow` returns and what the
+supervisor runs. Everything is frozen; the only thing filled in after an
+object is made is the list of links leaving an instance's output port, while
+the flow is being expanded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from enum import Enum
+from pathlib import Path
+from typing import Any
+
+from bandloom.blocks.block import Block, StreamInfo
+
+from .problems import KeyPath, format_key_path
+
+__all__ = ["Flow", "Instance", "Link", "LinkOptions", "WhenFull"]
+
+
+class WhenFull(str, Enum):
+    """What a link does when its queue is full."""
+
+    WAIT = "wait"       # lossless: the producer waits (backpressure)
+    DROP = "drop"       # the message is dropped whole, counted, and the gap flagged
+
+
+@dataclass(frozen=True, kw_only=True)
+class LinkOptions:
+    """A link's options from the flow file (declared in :data:`~.declarations.LINK_OPTIONS`)."""
+
+    queue: int = 8
+    when_full: WhenFull = WhenFull.WAIT
+    insecure: bool = False
+    keys: str | None = None          # folder made by 'bandloom keys', resolved against the flow's folder
+    tolerance: float | None = None   # Hz, for selection by frequency
+
+
+@dataclass(frozen=True, kw_only=True)
+class Link:
+    """One link after expansion: a producer's output to a consumer's input, or to a fixed endpoint.
+
+    ``columns`` are positions in the source stream's channels (None: the
+    stream as it is); ``stream`` is what the link carries after selection.
+    """
+
+    id: int
+    where: KeyPath                   # key path of what declared it, for messages
+    source: str                      # instance name
+    source_port: str
+    columns: tuple[int, ...] | None
+    target: str | None               # instance name (None for an endpoint)
+    target_port: str | None
+    endpoint: str | None             # fixed endpoint for outside consumers
+    stream: StreamInfo
+    options: LinkOptions = LinkOptions()
+
+    @property
+    def label(self) -> str:
+        """``source.port[selection] -> target.port`` (or the endpoint), for tables and messages."""
+        sel = ""
+        if self.columns is not None:
+            chans = self.stream.channels
+            sel = f"[{chans[0]}]" if len(chans) == 1 else f"[{len(chans)} channels]"
+        to = f"{self.target}.{self.target_port}" if self.target else self.endpoint
+        return f"{self.source}.{self.source_port}{sel} -> {to}"
+
+    @property
+    def declared_at(self) -> str:
+        """The key path that declared the link, written for people."""
+        return format_key_path(self.where)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Instance:
+    """One block process: a declared block, or one channel's copy of a per-channel block."""
+
+    name: str
+    declared: str                    # the [blocks.NAME] it comes from
+    cls: type[Block]
+    params: dict[str, Any]
+    placeholders: dict[str, Any] = field(default_factory=dict)
+    inputs: dict[str, Link] = field(default_factory=dict)              # port -> link
+    outputs: dict[str, list[Link]] = field(default_factory=dict)       # port -> links, filled as consumers appear
+    output_streams: dict[str, StreamInfo] = field(default_factory=dict)
+
+    @property
+    def type_name(self) -> str:
+        return self.cls.type_name
+
+    @property
+    def input_streams(self) -> dict[str, StreamInfo]:
+        return {port: link.stream for port, link in self.inputs.items()}
+
+
+@dataclass(frozen=True, kw_only=True)
+class Flow:
+    """A flow ready to run: instances in topological order (producers first) and every link."""
+
+    path: Path
+    name: str
+    description: str
+    instances: dict[str, Instance]
+    links: list[Link]

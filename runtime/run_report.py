@@ -1,0 +1,121 @@
+"""What a run did, for people and programs: the live status table, the summary, the --report JSON.
+
+Counts come from the workers' last statistics (:class:`~.control.StatsMessage`):
+for each link what its sender delivered, dropped and counted as missing, and
+what its receiver read; for each block its state, exit and report lines.
+"""
+
+from __future__ import annotations
+
+import signal
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any, TextIO
+
+from ._table import render_rows
+from .control import InletStats, OutletStats
+from .flow import Flow, Link
+
+if TYPE_CHECKING:
+    from .supervisor import BlockRecord
+
+__all__ = ["StatusDisplay", "describe_exit", "link_counts", "print_summary", "summarise"]
+
+
+def describe_exit(code: int | None) -> str:
+    """``exit status 1``, ``killed by SIGKILL``, or ``still running``."""
+    if code is None:
+        return "still running"
+    if code < 0:
+        try:
+            return f"killed by {signal.Signals(-code).name}"
+        except ValueError:
+            return f"killed by signal {-code}"
+    return f"exit status {code}"
+
+
+def link_counts(flow: Flow, blocks: Mapping[str, BlockRecord]) -> list[tuple[Link, OutletStats, InletStats | None]]:
+    """Each link with its sender's and (for internal links) its receiver's last counters."""
+    rows = []
+    for link in flow.links:
+        source = blocks.get(link.source)
+        sent = source.last.outputs.get(link.id) if source and source.last else None
+        received = None
+        if link.target:
+            target = blocks.get(link.target)
+            received = (target.last.inputs.get(link.id) if target and target.last else None) or InletStats()
+        rows.append((link, sent or OutletStats(), received))
+    return rows
+
+
+def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, seconds: float) -> dict[str, Any]:
+    """The end-of-run report as plain values (what --report writes as JSON)."""
+    links = []
+    for link, sent, received in link_counts(flow, blocks):
+        links.append({
+            "link": link.label, "where": link.declared_at,
+            "sent_samples": sent.rows, "sent_messages": sent.messages,
+            "received_samples": received.rows if received else None,
+            "received_messages": received.messages if received else None,
+            "dropped_samples": sent.dropped_rows, "dropped_messages": sent.dropped_messages,
+            "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
+            "last_index": sent.next_index,
+        })
+    report = {name: {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
+                     "reason": r.exit_reason, "report": list(r.report),
+                     "samples_in": r.last.rows_in if r.last else 0, "samples_out": r.last.rows_out if r.last else 0}
+              for name, r in blocks.items()}
+    return {"flow": str(flow.path), "name": flow.name, "outcome": outcome, "seconds": round(seconds, 3),
+            "blocks": report, "links": links}
+
+
+def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO) -> None:
+    """The summary on stderr: outcome, failures, the link table, each block's report lines."""
+    print(f"bandloom: flow {summary['name']!r} {summary['outcome']} in {summary['seconds']:.2f} s", file=log)
+    for line in failures:
+        print(f"bandloom: {line}", file=log)
+    rows = [[x["link"], x["sent_samples"], x["sent_messages"], x["dropped_samples"], x["missing_samples"],
+             x["discontinuities"]] for x in summary["links"]]
+    table = render_rows(["link", "samples", "messages", "dropped", "missing", "gaps"], rows)
+    print("\n".join("  " + line for line in table.splitlines()), file=log)
+    print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged)", file=log)
+    for name, block in summary["blocks"].items():
+        for line in block["report"]:
+            print(f"  {name}: {line}", file=log)
+
+
+class StatusDisplay:
+    """A per-block status table redrawn in place on a terminal."""
+
+    def __init__(self, log: TextIO) -> None:
+        self.log = log
+        self.lines = 0
+
+    def show(self, flow: Flow, blocks: Mapping[str, BlockRecord]) -> None:
+        queue_fill: dict[str, float] = {}
+        for link, sent, received in link_counts(flow, blocks):
+            if link.target and received is not None:
+                in_flight = max(0, sent.seq - (received.seq + 1))
+                fill = min(1.0, in_flight / (2 * link.options.queue))
+                queue_fill[link.target] = max(queue_fill.get(link.target, 0.0), fill)
+        rows = []
+        for name, record in blocks.items():
+            last = record.last
+            drops = sum(o.dropped_rows for o in last.outputs.values()) if last else 0
+            done = max(last.rows_in, last.rows_out) if last else 0
+            bar = ""
+            if last and last.progress and last.progress[1]:
+                part = min(1.0, last.progress[0] / last.progress[1])
+                bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
+            fill = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
+            rows.append([name[:24], record.state.value, float(f"{record.rate:.4g}"), done, fill, drops, bar])
+        table = render_rows(["block", "state", "rate/s", "samples", "queue", "drops", "progress"], rows)
+        self.clear()
+        self.log.write(table + "\n")
+        self.log.flush()
+        self.lines = table.count("\n") + 1
+
+    def clear(self) -> None:
+        if self.lines:
+            self.log.write(f"\x1b[{self.lines}F\x1b[J")
+            self.log.flush()
+            self.lines = 0

@@ -1,0 +1,88 @@
+"""What the supervisor hands a worker process: its block and its links, as typed values with a JSON form.
+
+The supervisor writes one :class:`WorkerSpec` per block instance to a file in
+the run's private folder and starts ``python -m bandloom.runtime.worker FILE``;
+the worker reads it back with :meth:`WorkerSpec.from_json`. Nothing else
+passes between them before the run starts.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field, fields
+from typing import Any
+
+from bandloom.blocks.block import StreamInfo
+
+from .flow.model import WhenFull
+
+__all__ = ["LinkSpec", "WorkerSpec"]
+
+
+@dataclass(frozen=True, kw_only=True)
+class LinkSpec:
+    """One end of one link, as a worker opens it.
+
+    ``endpoint`` is the ZeroMQ address; ``bind`` says whether this end binds
+    it (an input always does; an output only for an endpoint for outside
+    programs). ``columns`` picks channels from the block's output (None: all).
+    """
+
+    link: int
+    label: str
+    endpoint: str
+    stream: StreamInfo
+    bind: bool = False
+    columns: tuple[int, ...] | None = None
+    queue: int = 8
+    when_full: WhenFull = WhenFull.WAIT
+    keys: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        values = {f.name: getattr(self, f.name) for f in fields(self)}
+        values.update(stream=self.stream.to_dict(), when_full=self.when_full.value,
+                      columns=None if self.columns is None else list(self.columns))
+        return values
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> LinkSpec:
+        values = dict(data)
+        values.update(stream=StreamInfo.from_dict(data["stream"]), when_full=WhenFull(data["when_full"]),
+                      columns=None if data.get("columns") is None else tuple(data["columns"]))
+        return cls(**values)
+
+
+@dataclass(frozen=True, kw_only=True)
+class WorkerSpec:
+    """Everything one worker needs: its block (type, parameters, placeholders), where it lives, its
+    links by port, and the supervisor's control and statistics sockets.
+
+    >>> spec = WorkerSpec(name="keep", type_name="discard", params={"rate_limit": 0.0}, flow_path="f.toml",
+    ...                   output_dir=".", control="ipc:///tmp/c", stats="ipc:///tmp/s")
+    >>> WorkerSpec.from_json(spec.to_json()) == spec
+    True
+    """
+
+    name: str
+    type_name: str
+    params: dict[str, Any]
+    flow_path: str
+    output_dir: str
+    control: str
+    stats: str
+    placeholders: dict[str, Any] = field(default_factory=dict)
+    inputs: dict[str, LinkSpec] = field(default_factory=dict)
+    outputs: dict[str, list[LinkSpec]] = field(default_factory=dict)
+
+    def to_json(self) -> str:
+        values = {f.name: getattr(self, f.name) for f in fields(self)}
+        values.update(inputs={port: spec.to_dict() for port, spec in self.inputs.items()},
+                      outputs={port: [spec.to_dict() for spec in specs] for port, specs in self.outputs.items()})
+        return json.dumps(values)
+
+    @classmethod
+    def from_json(cls, text: str) -> WorkerSpec:
+        values = json.loads(text)
+        values.update(inputs={port: LinkSpec.from_dict(d) for port, d in values["inputs"].items()},
+                      outputs={port: [LinkSpec.from_dict(d) for d in ds] for port, ds in values["outputs"].items()})
+        return cls(**values)
