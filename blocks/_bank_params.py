@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+from typing import Any
+
 from .block import BlockError, Param
-from .dsp.design import SHAPES, design_bank
+from .dsp.design import SHAPES, BankDesign, design_bank
 from .dsp.errors import ParameterError
 
 DESIGN_PARAMS = (
@@ -24,14 +27,15 @@ DESIGN_PARAMS = (
 DESIGN_KEYS = tuple(p.name for p in DESIGN_PARAMS)
 
 
-def make_design(channels, oversample, knobs):
+def make_design(channels: int, oversample: int, knobs: Mapping[str, Any]) -> BankDesign:
     """design_bank from block parameters; ValueError becomes BlockError naming the parameter."""
     if channels % oversample:
         divisors = [d for d in range(1, channels + 1) if channels % d == 0]
         raise BlockError(f"oversample = {oversample} does not divide channels = {channels} "
                          f"(choose one of {divisors})", param="oversample")
     try:
-        return design_bank(channels, oversample=oversample, **{k: knobs.get(k) for k in DESIGN_KEYS})
+        values: dict[str, Any] = {k: knobs.get(k) for k in DESIGN_KEYS}
+        return design_bank(channels, oversample=oversample, **values)
     except ParameterError as error:
         param = error.param if error.param in DESIGN_KEYS + ("oversample", "channels") else None
         raise BlockError(str(error), param=param) from None

@@ -6,7 +6,7 @@ from fractions import Fraction
 
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .dsp.mixing import shift_frequency
 from .units import format_frequency
 
@@ -19,7 +19,7 @@ class Shift(Block):
     inputs = (Port("samples", "samples", "IQ"),)
     outputs = (Port("samples", "samples", "IQ, centre frequency moved by 'offset'"),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         s = inputs["samples"]
         if abs(self.params["offset"]) >= s.sample_rate / 2:
             raise BlockError(f"offset = {format_frequency(self.params['offset'])} is outside the stream's "
@@ -27,16 +27,16 @@ class Shift(Block):
         return {"samples": StreamInfo("samples", "cf32", s.sample_rate, s.centre_frequency + self.params["offset"],
                                       start_time=s.start_time)}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.rate = inputs["samples"].sample_rate
         self.cycles_per_sample = self.params["offset"] / self.rate
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         return {"samples": [Chunk(shift_frequency(chunk.data, chunk.first_index, -self.cycles_per_sample),
                                   chunk.first_index)]}
 
 
-def rational_ratio(target, rate):
+def rational_ratio(target: float, rate: float) -> tuple[int, int]:
     """up/down with small terms such that rate * up / down == target, or BlockError."""
     ratio = Fraction(target / rate).limit_denominator(10000)
     if abs(float(ratio) * rate - target) > 1e-12 * target:
@@ -53,13 +53,13 @@ class Resample(Block):
     inputs = (Port("samples", "samples", "IQ or audio", sample_types=("cf32", "f32")),)
     outputs = (Port("samples", "samples", "the same signal at the new rate", sample_types=("cf32", "f32")),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         s = inputs["samples"]
         rational_ratio(self.params["rate"], s.sample_rate)
         return {"samples": StreamInfo("samples", s.sample_type, self.params["rate"], s.centre_frequency,
                                       start_time=s.start_time)}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         from .dsp.resample import Resampler
         s = inputs["samples"]
         self.dtype = s.dtype
@@ -67,15 +67,15 @@ class Resample(Block):
         self.resampler = Resampler(up, down)
         self.index = 0
 
-    def _chunk(self, values):
+    def _chunk(self, values: np.ndarray) -> Output:
         chunk = Chunk(values.astype(self.dtype), self.index)
         self.index += len(values)
         return {"samples": [chunk]} if len(values) else {}
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         return self._chunk(self.resampler.process(chunk.data))
 
-    def finish(self):
+    def finish(self) -> Output:
         return self._chunk(self.resampler.finish())
 
 
@@ -93,17 +93,17 @@ class FMDemod(Block):
     inputs = (Port("samples", "samples", "one channel of IQ, carrier at 0 Hz"),)
     outputs = (Port("audio", "samples", "audio, float32, at the channel rate", sample_types=("f32",)),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         s = inputs["samples"]
         return {"audio": StreamInfo("samples", "f32", s.sample_rate, s.centre_frequency, channels=s.channels,
                                     channel_frequencies=s.channel_frequencies, start_time=s.start_time)}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         from .dsp.demod import FMDemodulator
         self.demod = FMDemodulator(inputs["samples"].sample_rate, full_scale=self.params["full_scale"],
                                    deemphasis=self.params["deemphasis"], squelch=self.params["squelch"])
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         return {"audio": [Chunk(self.demod.process(chunk.data), chunk.first_index)]}
 
 
@@ -117,9 +117,9 @@ class AMDemod(Block):
 
     output_streams = FMDemod.output_streams
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         from .dsp.demod import AMDemodulator
         self.demod = AMDemodulator(inputs["samples"].sample_rate, dc_cutoff=self.params["dc_cutoff"])
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         return {"audio": [Chunk(self.demod.process(chunk.data), chunk.first_index)]}

@@ -7,7 +7,8 @@ from dataclasses import replace
 import numpy as np
 
 from ._bank_params import DESIGN_KEYS, DESIGN_PARAMS, make_design
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo
+from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .dsp.design import BankDesign
 from .dsp.mixing import shift_frequency
 
 
@@ -25,10 +26,10 @@ class Channelizer(Block):
     inputs = (Port("samples", "samples", "wideband IQ"),)
     outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
 
-    def _design(self):
+    def _design(self) -> BankDesign:
         return make_design(self.params["channels"], self.params["oversample"], self.params)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         design = self._design()
         wide = inputs["samples"]
         grid = self.params.get("grid_offset") or 0.0
@@ -45,11 +46,11 @@ class Channelizer(Block):
             channel_count=design.channels, channel_spacing=wide.sample_rate / design.channels,
             design=knobs, start_time=wide.start_time)}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.bank = self._design().analysis_bank()
         self.shift = (self.params.get("grid_offset") or 0.0) / inputs["samples"].sample_rate
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         if self.shift:
             chunk = Chunk(shift_frequency(chunk.data, chunk.first_index, -self.shift), chunk.first_index,
                           chunk.discontinuity, chunk.dropped)
@@ -66,7 +67,7 @@ class Channelizer(Block):
         return {"channels": out}
 
 
-    def end_index(self, port):
+    def end_index(self, port: str) -> int:
         return self.bank.frames_produced
 
 
@@ -82,7 +83,7 @@ class Synthesis(Block):
     outputs = (Port("samples", "samples", "wideband IQ at the channelizer's input rate, delayed by "
                     "the design's round-trip delay"),)
 
-    def _design(self, stream):
+    def _design(self, stream: StreamInfo) -> BankDesign:
         knobs = dict(stream.design)
         for key in ("oversample",) + DESIGN_KEYS:
             if self.params.get(key) is not None:
@@ -91,7 +92,7 @@ class Synthesis(Block):
             raise BlockError("the input does not come from a channelizer", port="channels")
         return make_design(stream.channel_count, knobs.get("oversample") or 2, knobs)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         stream = inputs["channels"]
         if stream.kind != "channels":
             raise BlockError("expects a channels stream (several channels side by side); the link "
@@ -109,14 +110,14 @@ class Synthesis(Block):
                                       stream.centre_frequency, start_time=stream.start_time,
                                       design={"round_trip_delay": design.delay})}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         stream = inputs["channels"]
         self.design = self._design(stream)
         self.bank = self.design.synthesis_bank()
         self.columns = np.asarray(stream.channels)
         self.shift = (stream.design.get("grid_offset") or 0.0) / (stream.sample_rate * self.design.decimation)
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         out = []
         if chunk.dropped:
             first = self.bank.frames_consumed * self.design.decimation
@@ -131,5 +132,5 @@ class Synthesis(Block):
             out = [Chunk(shift_frequency(c.data, c.first_index, self.shift), c.first_index) for c in out]
         return {"samples": out}
 
-    def end_index(self, port):
+    def end_index(self, port: str) -> int:
         return self.bank.frames_consumed * self.design.decimation

@@ -7,7 +7,16 @@ from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockContext, BlockError, Param, Port, StreamInfo
+from .block import (
+    Block,
+    BlockContext,
+    BlockError,
+    Chunk,
+    Output,
+    Param,
+    Port,
+    StreamInfo,
+)
 
 __all__ = ["Compare"]
 from .dsp.verification import estimate_delay
@@ -29,7 +38,7 @@ class Compare(Block):
     inputs = (Port("reference", "samples", "the original stream"),
               Port("test", "samples", "the stream that should reproduce it"))
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         a, b = inputs["reference"], inputs["test"]
         if abs(a.sample_rate - b.sample_rate) > 1e-9 * a.sample_rate:
             raise BlockError(f"sample-rate mismatch: reference at {format_frequency(a.sample_rate)}, test at "
@@ -46,7 +55,7 @@ class Compare(Block):
         hint = inputs["test"].design.get("round_trip_delay") if inputs["test"].design else None
         self.delay = self.params["delay"] if self.params["delay"] >= 0 else hint
         self.estimated = self.delay is None
-        self.buffers = {"reference": [], "test": []}
+        self.buffers: dict[str, list[np.ndarray]] = {"reference": [], "test": []}
         self.base = {"reference": 0, "test": 0}      # absolute index of each buffer's first sample
         self.held = {"reference": 0, "test": 0}
         self.ended = False
@@ -55,26 +64,26 @@ class Compare(Block):
         self.test_power = 0.0
         self.count = 0
 
-    def _array(self, port):
+    def _array(self, port: str) -> np.ndarray:
         parts = self.buffers[port]
         if len(parts) > 1:
             self.buffers[port] = [np.concatenate(parts)]
         return self.buffers[port][0] if self.buffers[port] else np.zeros(0, np.complex64)
 
-    def _drop(self, port, n):
+    def _drop(self, port: str, n: int) -> None:
         data = self._array(port)[n:]
         self.buffers[port] = [data] if len(data) else []
         self.base[port] += n
         self.held[port] -= n
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         data = chunk.with_gap_filled().astype(np.complex128)
         self.buffers[port].append(data)
         self.held[port] += len(data)
         self._advance()
         return {}
 
-    def _advance(self):
+    def _advance(self) -> None:
         if self.delay is None:
             need = self.params["max_delay"] + 65536
             if (self.held["reference"] < need or self.held["test"] < need) and not self.ended:
@@ -102,13 +111,13 @@ class Compare(Block):
         self._drop("reference", stop - self.base["reference"])
         self._drop("test", max(0, stop + d - self.base["test"]))
 
-    def finish(self):
+    def finish(self) -> Output:
         self.ended = True
         self._advance()
         return {}
 
-    def figures(self):
-        if not self.count or self.ref == 0:
+    def figures(self) -> dict[str, Any]:
+        if not self.count or self.ref == 0 or self.delay is None:
             return {"delay_samples": self.delay, "compared_samples": self.count, "error_db": None, "pass": False}
         error_db = 10 * np.log10(max(self.err / self.ref, 1e-30))
         gain = abs(self.cross) / self.ref
@@ -120,13 +129,13 @@ class Compare(Block):
                 "phase_degrees": round(float(np.degrees(np.angle(self.cross))), 6),
                 "threshold_db": self.params["threshold"], "pass": bool(error_db <= self.params["threshold"])}
 
-    def close(self):
+    def close(self) -> None:
         if self.ended and self.params["path"]:
             path = self.context.output_path(self.params["path"])
             path.parent.mkdir(parents=True, exist_ok=True)
             path.write_text(json.dumps(self.figures(), indent=2) + "\n")
 
-    def report(self):
+    def report(self) -> list[str]:
         if not self.started:
             return []
         f = self.figures()

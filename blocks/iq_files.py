@@ -11,7 +11,17 @@ import re
 from pathlib import Path
 from typing import IO, Any
 
-from .block import Block, BlockContext, BlockError, Chunk, Output, Pacer, Param, Port, StreamInfo
+from .block import (
+    Block,
+    BlockContext,
+    BlockError,
+    Chunk,
+    Output,
+    Pacer,
+    Param,
+    Port,
+    StreamInfo,
+)
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
@@ -101,7 +111,7 @@ class IQReader(Block):
         """Format, byte order, rate, centre and start time: the flow's values, else the metadata's."""
         path = self.context.input_path(self.params["path"])
         meta_path = sigmf_meta_path(path)
-        meta = (None, None, None, None, None)
+        meta: tuple[Any, ...] = (None, None, None, None, None)
         if self.params["metadata"] == "sigmf" or (self.params["metadata"] == "auto" and meta_path.exists()):
             if not meta_path.exists():
                 raise BlockError(f"metadata = \"sigmf\" but there is no {meta_path}", param="metadata")
@@ -172,7 +182,7 @@ class IQReader(Block):
         n = len(raw) // self.sample_bytes
         if n == 0:
             return None
-        data = self.format.decode(raw[:n * self.sample_bytes], self.byte_order)
+        data = self.format.decode(raw[:n * self.sample_bytes], "big" if self.byte_order == "big" else "little")
         chunk = Chunk(data, self.index)
         self.position += n
         self.index += n

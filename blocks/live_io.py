@@ -17,9 +17,16 @@ import threading
 import time
 from typing import Any
 
-import numpy as np
-
-from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .block import (
+    Block,
+    BlockContext,
+    BlockError,
+    Chunk,
+    Output,
+    Param,
+    Port,
+    StreamInfo,
+)
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["StdinReader", "StdoutWriter", "UDPReader"]
@@ -195,7 +202,7 @@ class StdoutWriter(Block):
         if self.closed_pipe:
             return {}
         data = self.format.encode(chunk.with_gap_filled())
-        view = memoryview(data).cast("B")
+        view = memoryview(data.tobytes() if not data.flags.c_contiguous else data.data).cast("B")
         try:
             while len(view):
                 done = os.write(self.fd, view)

@@ -9,10 +9,19 @@ from typing import IO, Any
 
 import numpy as np
 
-from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .block import (
+    Block,
+    BlockContext,
+    BlockError,
+    Chunk,
+    Output,
+    Param,
+    Port,
+    StreamInfo,
+)
 
 __all__ = ["Activity", "Waterfall"]
-from .dsp.activity import ActivityDetector
+from .dsp.activity import ActivityDetector, Event
 from .dsp.errors import ParameterError
 from .units import format_frequency
 
@@ -27,7 +36,7 @@ DETECTOR_PARAMS = (
 )
 
 
-def _detector(params, stream, keep_levels=False):
+def _detector(params: dict[str, Any], stream: StreamInfo, keep_levels: bool = False) -> ActivityDetector:
     try:
         return ActivityDetector(stream.width, stream.sample_rate, interval=params["interval"],
                                 threshold=params["threshold"], hysteresis=params["hysteresis"],
@@ -39,7 +48,7 @@ def _detector(params, stream, keep_levels=False):
         raise BlockError(str(error), param=error.param) from None
 
 
-def _channel_labels(stream):
+def _channel_labels(stream: StreamInfo) -> tuple[list[int], list[float]]:
     if stream.kind == "channels":
         return list(stream.channels), list(stream.channel_frequencies)
     channel = stream.channels[0] if stream.channels else 0
@@ -55,7 +64,7 @@ class Activity(Block):
     )
     inputs = (Port("channels", "any", "channels from a channelizer (or one channel)"),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         if not self.params["path"].endswith((".csv", ".jsonl")):
             raise BlockError(f"path = \"{self.params['path']}\" must end in .csv or .jsonl", param="path")
         _detector(self.params, inputs["channels"])
@@ -77,7 +86,8 @@ class Activity(Block):
             self.writer = csv.writer(self.file)
             self.writer.writerow(["time_s", "channel", "frequency_hz", "level_dbfs", "event"])
 
-    def _write(self, events):
+    def _write(self, events: list[Event]) -> None:
+        assert self.file is not None
         for e in events:
             row = {"time_s": round(e.time, 6), "channel": self.channels[e.column],
                    "frequency_hz": round(self.frequencies[e.column], 3), "level_dbfs": round(e.level_db, 2),
@@ -88,11 +98,13 @@ class Activity(Block):
                 self.writer.writerow(row.values())
             self.events += 1
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
+        assert self.detector is not None
         self._write(self.detector.process(chunk.data))
         return {}
 
-    def finish(self):
+    def finish(self) -> Output:
+        assert self.detector is not None
         self._write(self.detector.finish())
         return {}
 
@@ -134,7 +146,7 @@ class Waterfall(Block):
               Port("channels", "channels", "the channelizer's output, to mark the grid and activity",
                    required=False))
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         try:
             import matplotlib  # noqa: F401
         except ImportError:
@@ -161,14 +173,15 @@ class Waterfall(Block):
         self.row_count = 0
         self.total = 0
 
-    def _fold_rows(self):
+    def _fold_rows(self) -> None:
         # keep memory bounded: merge neighbouring rows and double the averaging
         merged = [(a + b) / 2 for a, b in zip(self.rows[0::2], self.rows[1::2])]
         self.rows = merged
         self.segments_per_row *= 2
 
-    def consume(self, port, chunk):
+    def consume(self, port: str, chunk: Chunk) -> Output:
         if port == "channels":
+            assert self.detector is not None
             self.detector.process(chunk.data)
             return {}
         n = self.params["fft_size"]
@@ -219,9 +232,9 @@ class Waterfall(Block):
             states = np.array(self.detector.states) if self.detector.states else np.zeros((0, cs.width), bool)
             step = self.detector.interval
             for c, f in enumerate(cs.channel_frequencies):
-                on = states[:, c] if len(states) else []
+                on = list(states[:, c]) if len(states) else []
                 start = None
-                for i, flag in enumerate(list(on) + [False]):
+                for i, flag in enumerate(on + [False]):
                     if flag and start is None:
                         start = i
                     elif not flag and start is not None:

@@ -29,9 +29,11 @@ and sound like speech on a waterfall and through a demodulator.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Param, Port, StreamInfo, toml_repr
+from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo, toml_repr
 from .units import UnitError, format_frequency, parse_quantity
 
 KINDS = ("cw", "am", "fm", "fsk", "noise")
@@ -45,7 +47,7 @@ _FIELDS = {
 }
 
 
-def parse_transmitters(items, sample_rate, centre):
+def parse_transmitters(items: list[Any], sample_rate: float, centre: float) -> list[dict[str, Any]]:
     """Check the ``transmitters`` list; return plain dicts (Hz, seconds, linear amplitude)."""
     out = []
     for i, item in enumerate(items):
@@ -95,17 +97,17 @@ def parse_transmitters(items, sample_rate, centre):
     return out
 
 
-def keying(t, intervals):
+def keying(t: np.ndarray, intervals: list[tuple[float, float]] | None) -> np.ndarray:
     """0..1 on/off envelope at times ``t`` (s) with raised-cosine ramps."""
     env = np.zeros_like(t)
-    for start, stop in intervals:
+    for start, stop in intervals or ():
         up = np.clip((t - start) / RAMP_SECONDS, 0, 1)
         down = np.clip((stop - t) / RAMP_SECONDS, 0, 1)
         env = np.maximum(env, np.minimum(0.5 - 0.5 * np.cos(np.pi * up), 0.5 - 0.5 * np.cos(np.pi * down)))
     return env
 
 
-def voice_like(t):
+def voice_like(t: np.ndarray) -> np.ndarray:
     """Deterministic voice-like audio at times ``t`` (s), peak about 1."""
     # pitch 185 + 65 sin(2 pi 0.7 t) Hz, integrated in closed form so chunks join seamlessly
     phase = 2 * np.pi * (185 * t - 65 / (2 * np.pi * 0.7) * np.cos(2 * np.pi * 0.7 * t))
@@ -117,14 +119,14 @@ def voice_like(t):
 class _Transmitter:
     """Streaming generator of one transmitter; continuous in phase across chunks."""
 
-    def __init__(self, tx, rate, rng):
+    def __init__(self, tx: dict[str, Any], rate: float, rng: np.random.Generator) -> None:
         self.tx = tx
         self.rate = rate
         self.rng = rng
         self.phase = 0.0          # accumulated modulation phase (fm, fsk)
         self.bits_made = 0        # fsk: bits drawn so far
         self.last_bit = 0
-        self.filter_state = None
+        self.filter_state = np.zeros(0, dtype=np.complex128)
         if tx["kind"] == "noise":
             import scipy.signal
             # a sharp band edge (about 3 kHz wide at 800 kHz, 100 dB down) so the
@@ -133,11 +135,11 @@ class _Transmitter:
             self.taps = scipy.signal.firwin(2049, cutoff, window=("kaiser", 10.0))
             self.filter_state = np.zeros(len(self.taps) - 1, dtype=np.complex128)
 
-    def audio(self, t):
+    def audio(self, t: np.ndarray) -> np.ndarray:
         tone = self.tx.get("tone", 1000.0)
         return voice_like(t) if tone == "voice" else np.sin(2 * np.pi * tone * t)
 
-    def chunk(self, first, n):
+    def chunk(self, first: int, n: int) -> np.ndarray:
         tx, rate = self.tx, self.rate
         t = (first + np.arange(n)) / rate
         carrier = np.exp(2j * np.pi * ((tx["offset"] * (first + np.arange(n))) % rate) / rate)
@@ -192,13 +194,13 @@ class Scenario(Block):
     )
     outputs = (Port("samples", "samples", "the synthetic band, IQ"),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         parse_transmitters(self.params["transmitters"], self.params["sample_rate"],
                            self.params["centre_frequency"])
         return {"samples": StreamInfo("samples", "cf32", self.params["sample_rate"],
                                       self.params["centre_frequency"])}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         import time
         rate = self.params["sample_rate"]
         seeds = np.random.SeedSequence(self.params["seed"]).spawn(len(self.params["transmitters"]) + 1)
@@ -210,10 +212,10 @@ class Scenario(Block):
         self.noise_amplitude = np.sqrt(10 ** (self.params["noise"] / 10) / 2)
         self.clock = time.monotonic()
 
-    def progress(self):
+    def progress(self) -> tuple[int, int]:
         return self.index, self.total
 
-    def produce(self):
+    def produce(self) -> Output | None:
         if self.stopping or self.index >= self.total:
             return None
         n = min(self.params["chunk_size"], self.total - self.index)

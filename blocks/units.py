@@ -8,6 +8,8 @@ unit. Prefixes are case-sensitive where SI makes them so (``mHz`` is not
 
 from __future__ import annotations
 
+__all__ = ["UNIT_FAMILIES", "UnitError", "format_frequency", "parse_quantity"]
+
 import re
 
 UNIT_FAMILIES = {
@@ -27,7 +29,7 @@ class UnitError(ValueError):
     """A value that is not a number in the expected unit; the message says what would be right."""
 
 
-def parse_quantity(value, unit):
+def parse_quantity(value: object, unit: str) -> float:
     """Return ``value`` as a float in ``unit`` (a key of UNIT_FAMILIES), or raise UnitError."""
     family = UNIT_FAMILIES[unit]
     if isinstance(value, bool):
@@ -51,15 +53,15 @@ def parse_quantity(value, unit):
     return number * scale
 
 
-def _quoted(value):
+def _quoted(value: object) -> str:
     return f'"{value}"' if isinstance(value, str) else repr(value)
 
 
-def _example(unit):
+def _example(unit: str) -> str:
     return {"Hz": "2.4 MHz", "s": "1.5 s", "dB": "60 dB", "dBFS": "-30 dBFS"}[unit]
 
 
-def format_frequency(hz):
+def format_frequency(hz: float) -> str:
     """Frequency for people: '156.800 MHz', '25 kHz', '0 Hz'."""
     magnitude = abs(hz)
     for scale, word in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):

@@ -8,7 +8,16 @@ from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .block import (
+    Block,
+    BlockContext,
+    BlockError,
+    Chunk,
+    Output,
+    Param,
+    Port,
+    StreamInfo,
+)
 from .sample_formats import FORMATS
 from .units import format_frequency
 
@@ -29,7 +38,7 @@ class WavReader(Block):
     )
     outputs = (Port("samples", "samples", "IQ samples, full scale 1.0"),)
 
-    def _open(self):
+    def _open(self) -> tuple[int, np.ndarray]:
         import scipy.io.wavfile
         path = self.context.input_path(self.params["path"])
         try:
@@ -44,20 +53,20 @@ class WavReader(Block):
             raise BlockError(f"{path} holds {data.dtype} samples, which this reader does not take", param="path")
         return rate, data
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         rate, _ = self._open()
         return {"samples": StreamInfo("samples", "cf32", float(rate), self.params["centre_frequency"])}
 
-    def start(self, inputs):
+    def start(self, inputs: dict[str, StreamInfo]) -> None:
         _, self.data = self._open()
         self.scale = _SCALE[self.data.dtype]
         self.offset = -128 if self.data.dtype == np.uint8 else 0
         self.index = 0
 
-    def progress(self):
+    def progress(self) -> tuple[int, int]:
         return self.index, len(self.data)
 
-    def produce(self):
+    def produce(self) -> Output | None:
         if self.stopping or self.index >= len(self.data):
             return None
         part = np.asarray(self.data[self.index:self.index + self.params["chunk_size"]], dtype=np.float32)
@@ -76,7 +85,7 @@ class WavWriter(Block):
     )
     inputs = (Port("audio", "samples", "audio (f32) or IQ (cf32)", sample_types=("f32", "cf32")),)
 
-    def output_streams(self, inputs):
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         rate = inputs["audio"].sample_rate
         if abs(rate - round(rate)) > 1e-6:
             raise BlockError(f"WAV needs a whole number of samples per second, the input runs at "

@@ -18,7 +18,7 @@ _M_MMAP_THRESHOLD = -3
 _THRESHOLD = 32 * 1024 * 1024      # glibc's maximum for the mmap threshold on 64-bit
 
 
-def reuse_chunk_buffers():
+def reuse_chunk_buffers() -> bool:
     """Ask glibc to keep blocks up to 32 MiB on the heap; return True if it took effect."""
     name = ctypes.util.find_library("c")
     if not name:

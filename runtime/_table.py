@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 
-def format_value(value):
+__all__ = ["format_value", "render_pairs", "render_rows"]
+
+
+def format_value(value: object) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
@@ -19,7 +23,7 @@ def format_value(value):
     return str(value)
 
 
-def render_rows(headers, rows):
+def render_rows(headers: Sequence[object], rows: Sequence[Sequence[object]]) -> str:
     """Columns left-aligned for text, right-aligned for numbers; two spaces apart."""
     cells = [[format_value(v) for v in row] for row in rows]
     widths = [max(len(str(h)), *(len(r[i]) for r in cells)) if cells else len(str(h))
@@ -27,7 +31,7 @@ def render_rows(headers, rows):
     numeric = [all(isinstance(row[i], (int, float)) and not isinstance(row[i], bool) for row in rows)
                for i in range(len(headers))]
 
-    def line(values):
+    def line(values: Sequence[str]) -> str:
         return "  ".join(v.rjust(w) if n else v.ljust(w)
                          for v, w, n in zip(values, widths, numeric)).rstrip()
 
@@ -36,7 +40,7 @@ def render_rows(headers, rows):
     return "\n".join(out)
 
 
-def render_pairs(pairs):
+def render_pairs(pairs: Sequence[tuple[str, object, str]]) -> str:
     """``label  value  unit`` lines, labels padded to one width."""
     width = max(len(label) for label, _, _ in pairs)
     return "\n".join(f"{label.ljust(width)}  {format_value(value)}{(' ' + unit) if unit else ''}"

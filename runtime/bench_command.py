@@ -14,21 +14,23 @@ from __future__ import annotations
 
 import json
 import time
+from argparse import ArgumentParser, Namespace
+from collections.abc import Callable
+from typing import Any, TextIO
 
 import numpy as np
 import scipy.fft
-
 from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
 
 from ._memory import reuse_chunk_buffers
 from ._table import render_rows
 
 
-def _int_list(text):
+def _int_list(text: str) -> list[int]:
     return [int(v) for v in text.split(",") if v.strip()]
 
 
-def add_arguments(parser):
+def add_arguments(parser: ArgumentParser) -> None:
     parser.add_argument("--channels", type=_int_list, default=[64, 1024, 4096], help="comma list of M")
     parser.add_argument("--taps-per-branch", type=_int_list, default=[4, 8, 16], help="comma list of R")
     parser.add_argument("--oversample", type=_int_list, default=[1, 2], help="comma list of M/D")
@@ -38,7 +40,7 @@ def add_arguments(parser):
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
 
 
-def _best(function, repeats):
+def _best(function: Callable[[], object], repeats: int) -> float:
     best = float("inf")
     for _ in range(repeats):
         start = time.perf_counter()
@@ -47,7 +49,8 @@ def _best(function, repeats):
     return best
 
 
-def measure_case(channels, taps_per_branch, oversample, *, samples, chunk, repeats, seed=0):
+def measure_case(channels: int, taps_per_branch: int, oversample: int, *, samples: int, chunk: int, repeats: int,
+                 seed: int = 0) -> dict[str, Any]:
     """Time one case; return a dict of throughputs and ratios."""
     M, R = channels, taps_per_branch
     D = M // oversample
@@ -59,13 +62,13 @@ def measure_case(channels, taps_per_branch, oversample, *, samples, chunk, repea
     pieces = [x[i:i + chunk] for i in range(0, samples, chunk)]
     analysis = AnalysisBank(M, D, taps)
     synthesis = SynthesisBank(M, D, taps)
-    frames = []
+    frames: list[np.ndarray] = []
 
-    def run_analysis():
+    def run_analysis() -> None:
         analysis.reset()
         frames[:] = [analysis.process(p) for p in pieces]
 
-    def run_synthesis():
+    def run_synthesis() -> None:
         synthesis.reset()
         for f in frames:
             synthesis.process(f)
@@ -75,16 +78,16 @@ def measure_case(channels, taps_per_branch, oversample, *, samples, chunk, repea
     # The baseline's frames: the same input cut into M-sample frames every D samples, chunk by chunk.
     padded = np.concatenate([x, np.zeros(M, np.complex64)])
     cut = np.lib.stride_tricks.sliding_window_view(padded, M)[::D]
-    starts = np.cumsum([0] + [len(f) for f in frames])
+    starts = np.cumsum(np.array([0] + [len(f) for f in frames]))
     forward = [np.ascontiguousarray(cut[a:b]) for a, b in zip(starts[:-1], starts[1:])]
     inverse = [f.copy() for f in frames]
     scratch = {"fft": [f.copy() for f in forward], "ifft": [f.copy() for f in inverse]}
 
-    def run_fft():
+    def run_fft() -> None:
         for w in scratch["fft"]:
             scipy.fft.fft(w, axis=1, workers=1, overwrite_x=True)
 
-    def run_ifft():
+    def run_ifft() -> None:
         for w in scratch["ifft"]:
             scipy.fft.ifft(w, axis=1, workers=1, overwrite_x=True)
 
@@ -108,7 +111,7 @@ def measure_case(channels, taps_per_branch, oversample, *, samples, chunk, repea
     }
 
 
-def run(args, out, progress=None):
+def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = None) -> int:
     reuse_chunk_buffers()
     results = []
     cases = [(m, r, p) for m in args.channels for r in args.taps_per_branch for p in args.oversample]

@@ -3,17 +3,18 @@
 from __future__ import annotations
 
 import json
+from argparse import ArgumentParser, Namespace
 from pathlib import Path
+from typing import Any, TextIO
 
 import numpy as np
-
 from bandloom.blocks.dsp import design_bank
-from bandloom.blocks.dsp.design import SHAPES
+from bandloom.blocks.dsp.design import SHAPES, BankDesign
 
 from ._table import render_pairs
 
 
-def add_design_arguments(parser, *, required=True):
+def add_design_arguments(parser: ArgumentParser, *, required: bool = True) -> None:
     """The design knobs, shared by design, roundtrip and channel-quality."""
     parser.add_argument("--channels", type=int, required=required, help="number of channels M")
     group = parser.add_mutually_exclusive_group()
@@ -30,7 +31,7 @@ def add_design_arguments(parser, *, required=True):
                         "(default kaiser, set by --stopband-db)")
 
 
-def add_arguments(parser):
+def add_arguments(parser: ArgumentParser) -> None:
     add_design_arguments(parser)
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
     parser.add_argument("--plot", metavar="FILE", help="draw the response with the channel grid and figures (PNG)")
@@ -38,7 +39,7 @@ def add_arguments(parser):
     parser.add_argument("--synthesis-taps", metavar="FILE", help="save the synthesis taps (.npy binary, else text)")
 
 
-def _save_taps(path, taps, header):
+def _save_taps(path: str | Path, taps: np.ndarray, header: str) -> None:
     path = Path(path)
     if path.suffix == ".npy":
         np.save(path, taps)
@@ -46,13 +47,13 @@ def _save_taps(path, taps, header):
         np.savetxt(path, taps, fmt="%.17g", header=header)
 
 
-def design_from_args(args):
+def design_from_args(args: Namespace) -> BankDesign:
     return design_bank(args.channels, args.decimation, oversample=args.oversample, shape=args.shape,
                        taps_per_branch=args.taps_per_branch, rolloff=args.rolloff,
                        stopband_db=args.stopband_db, window=args.window, tight_margin=args.tight_margin)
 
 
-def describe(design):
+def describe(design: BankDesign) -> list[tuple[str, Any, str]]:
     """The figures as (label, value, unit) rows for the table."""
     f = design.figures()
     return [
@@ -77,7 +78,7 @@ def describe(design):
     ]
 
 
-def run(args, out):
+def run(args: Namespace, out: TextIO) -> int:
     design = design_from_args(args)
     if args.taps:
         _save_taps(args.taps, design.analysis_taps, f"bandloom analysis taps: {design!r}")

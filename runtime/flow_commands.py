@@ -18,7 +18,6 @@ from .plugins import Registry, load_registry
 from .run_report import print_summary
 from .supervisor import RunOutcome, Supervisor
 
-
 __all__ = ["Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys", "run_run"]
 
 

@@ -23,7 +23,6 @@ from typing import Any
 import numpy as np
 import zmq
 import zmq.auth
-
 from bandloom.blocks.block import Chunk
 
 from . import wire

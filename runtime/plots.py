@@ -2,10 +2,15 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+from typing import Any
+
 import numpy as np
+from bandloom.blocks.dsp.design import BankDesign
+from bandloom.blocks.dsp.verification import SignalResult, ToneMeasurement
 
 
-def _pyplot():
+def _pyplot() -> Any:
     try:
         import matplotlib
     except ImportError:
@@ -15,7 +20,7 @@ def _pyplot():
     return plt
 
 
-def design_picture(design, path, measured=None):
+def design_picture(design: BankDesign, path: str | Path, measured: ToneMeasurement | None = None) -> None:
     """Prototype response with the channel grid and figures; a channel overlaid on its neighbours."""
     from bandloom.blocks.dsp.figures import frequency_response
 
@@ -65,7 +70,7 @@ def design_picture(design, path, measured=None):
     plt.close(fig)
 
 
-def round_trip_picture(results, design_label, path):
+def round_trip_picture(results: list[SignalResult], design_label: str, path: str | Path) -> None:
     """The round trip's error spectrum for each test signal, against the input's."""
     plt = _pyplot()
     fig, axes = plt.subplots(len(results), 1, figsize=(10, 2.6 * len(results)), dpi=100, sharex=True)

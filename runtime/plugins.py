@@ -32,11 +32,11 @@ class Registry:
     origins: dict = field(default_factory=dict)        # type name -> distribution name
     failures: list = field(default_factory=list)       # one line per plugin that did not load
 
-    def names(self):
+    def names(self) -> list[str]:
         return sorted(self.types)
 
 
-def validate_block_class(name, cls):
+def validate_block_class(name: str, cls: object) -> None:
     """Raise PluginError unless ``cls`` is a proper block type registered as ``name``."""
     if not (isinstance(cls, type) and issubclass(cls, Block)):
         raise PluginError(f"{cls!r} is not a subclass of bandloom.blocks.block.Block")
@@ -65,7 +65,7 @@ def validate_block_class(name, cls):
         raise PluginError("a source block cannot have inputs")
 
 
-def load_registry(only=None):
+def load_registry(only: str | None = None) -> Registry:
     """Load every block type (or just the one named ``only``); never raises for a bad plugin."""
     blocked = {n.strip() for n in os.environ.get("BANDLOOM_BLOCKED_PLUGINS", "").split(",") if n.strip()}
     registry = Registry()

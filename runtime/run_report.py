@@ -106,8 +106,8 @@ class StatusDisplay:
             if last and last.progress and last.progress[1]:
                 part = min(1.0, last.progress[0] / last.progress[1])
                 bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
-            fill = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
-            rows.append([name[:24], record.state.value, float(f"{record.rate:.4g}"), done, fill, drops, bar])
+            queue = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
+            rows.append([name[:24], record.state.value, float(f"{record.rate:.4g}"), done, queue, drops, bar])
         table = render_rows(["block", "state", "rate/s", "samples", "queue", "drops", "progress"], rows)
         self.clear()
         self.log.write(table + "\n")

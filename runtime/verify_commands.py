@@ -9,17 +9,23 @@ synthesis settings, an IQ reader per test signal and an IQ writer per output.
 
 from __future__ import annotations
 
-import argparse
 import json
 import sys
 import tempfile
+from argparse import ArgumentParser, Namespace
 from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
-
-from bandloom.blocks.dsp.verification import SIGNALS, SignalResult, analyse_round_trip, \
-    measure_channel_response, probe_signal, round_trip_in_process
+from bandloom.blocks.dsp.design import BankDesign
+from bandloom.blocks.dsp.verification import (
+    SIGNALS,
+    SignalResult,
+    analyse_round_trip,
+    measure_channel_response,
+    probe_signal,
+    round_trip_in_process,
+)
 
 from ._table import render_rows
 from .design_command import add_design_arguments, design_from_args
@@ -27,14 +33,14 @@ from .flow import FlowErrors, check_flow, load_flow
 from .plugins import load_registry
 
 
-def _common(parser):
+def _common(parser: ArgumentParser) -> None:
     add_design_arguments(parser, required=False)
     parser.add_argument("--flow", help="measure this flow's channelizer (and synthesis) instead of a design")
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
     parser.add_argument("--plot", metavar="FILE", help="draw the figures (PNG)")
 
 
-def add_roundtrip_arguments(parser):
+def add_roundtrip_arguments(parser: ArgumentParser) -> None:
     _common(parser)
     parser.add_argument("--threshold", type=float, default=-100.0,
                         help="PASS when every signal's error is at or below this, dB (default -100)")
@@ -42,7 +48,7 @@ def add_roundtrip_arguments(parser):
     parser.add_argument("--frames", type=int, default=64, help="length of each test signal in frames of M")
 
 
-def add_quality_arguments(parser):
+def add_quality_arguments(parser: ArgumentParser) -> None:
     _common(parser)
     parser.add_argument("--steps", type=int, default=32, help="tones per channel spacing")
 
@@ -50,7 +56,7 @@ def add_quality_arguments(parser):
 class _FlowBank:
     """What a flow's channelizer is: its parameters, input rate and centre, and its design."""
 
-    def __init__(self, flow_path):
+    def __init__(self, flow_path: str | Path) -> None:
         from bandloom.blocks._bank_params import DESIGN_KEYS, make_design
         try:
             flow = load_flow(flow_path, load_registry())
@@ -69,7 +75,7 @@ class _FlowBank:
         self.label = f"{flow_path}: block {self.split.name!r}"
 
 
-def _target(args):
+def _target(args: Namespace) -> _FlowBank | None:
     if args.flow:
         return _FlowBank(args.flow)
     if args.channels is None:
@@ -128,7 +134,7 @@ def round_trip_through_processes(target: _FlowBank, signals: list[str], frames: 
     return results, len(pids)
 
 
-def _why(result, design):
+def _why(result: SignalResult, design: BankDesign) -> tuple[int, float, str]:
     k, level = result.worst_channel()
     floor = design.round_trip_error_db
     if level <= floor + 9:
@@ -137,7 +143,7 @@ def _why(result, design):
     return k, level, f"{level - floor:.1f} dB above the design's predicted floor ({floor:.1f} dB): see the error spectrum (--plot)"
 
 
-def run_roundtrip(args, out, log=None):
+def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     target = _target(args)
     signals = [s.strip() for s in args.signals.split(",") if s.strip()]
@@ -180,7 +186,7 @@ def run_roundtrip(args, out, log=None):
         out.write(f"round trip of {label}, {where}\n")
         out.write(f"design delay {design.delay} samples; predicted error {design.round_trip_error_db:.1f} dB "
                   f"(float64, white input)\n\n")
-        rows = []
+        rows: list[list[Any]] = []
         for sig in report["signals"]:
             other = []
             if sig["spurs_away_from_tones_db"] is not None:
@@ -200,7 +206,7 @@ def run_roundtrip(args, out, log=None):
     return 0 if passed else 1
 
 
-def run_quality(args, out, log=None):
+def run_quality(args: Namespace, out: TextIO, log: TextIO | None = None) -> int:
     target = _target(args)
     design = target.design if target else design_from_args(args)
     label = target.label if target else f"design M={design.channels} D={design.decimation} ({design.shape})"
@@ -216,7 +222,7 @@ def run_quality(args, out, log=None):
         "alias_rejection_db": _alias_from_taps(design),
         "enbw_bins": computed.enbw_bins,
     }
-    rows = []
+    rows: list[dict[str, Any]] = []
     for key, title in (("passband_ripple_db", f"flat-part ripple (|f| <= {design.passband_edge:.2f}), dB"),
                        ("edge_response_db", "response at the channel edge, dB"),
                        ("scalloping_loss_db", "scalloping loss across the channel, dB"),
@@ -240,7 +246,7 @@ def run_quality(args, out, log=None):
     return 0
 
 
-def _alias_from_taps(design):
+def _alias_from_taps(design: BankDesign) -> float:
     """Worst response at |f| >= M/D - 1/2 spacings: what folds into the passband after decimation."""
     from bandloom.blocks.dsp.figures import frequency_response
     offsets, response = frequency_response(design.analysis_taps, design.channels)

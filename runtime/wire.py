@@ -15,7 +15,6 @@ from typing import Any
 
 import msgpack
 import numpy as np
-
 from bandloom.blocks.sample_formats import STREAM_TYPES
 
 __all__ = ["FLAG_DISCONTINUITY", "FLAG_END", "HEADER_LIMIT", "MAX_ROWS", "SAMPLE_TYPES", "VERSION", "WireError",

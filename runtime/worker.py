@@ -31,7 +31,6 @@ import traceback
 from pathlib import Path
 
 import zmq
-
 from bandloom.blocks.block import Block, BlockContext, Output
 
 from . import wire

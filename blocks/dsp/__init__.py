@@ -7,6 +7,7 @@ pay for loading scipy.signal and numba.
 """
 
 from importlib import import_module
+from typing import Any
 
 _WHERE = {
     "AnalysisBank": "banks", "SynthesisBank": "banks", "channel_offsets": "banks",
@@ -19,7 +20,7 @@ _WHERE = {
 __all__ = sorted(_WHERE)
 
 
-def __getattr__(name):
+def __getattr__(name: str) -> Any:
     if name in _WHERE:
         value = getattr(import_module(f".{_WHERE[name]}", __name__), name)
         globals()[name] = value
@@ -27,5 +28,5 @@ def __getattr__(name):
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
-def __dir__():
+def __dir__() -> list[str]:
     return __all__

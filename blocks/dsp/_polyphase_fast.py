@@ -15,7 +15,7 @@ from numba import njit
 
 
 @njit(cache=True, fastmath=True, nogil=True, inline="never")
-def _multiply_add(acc, taps, samples):
+def _multiply_add(acc, taps: np.ndarray, samples) -> None:
     """acc += taps * samples, taps real (n), acc and samples interleaved I/Q floats (2n).
 
     Kept as its own never-inlined function on plain slices: with offsets in
@@ -28,7 +28,7 @@ def _multiply_add(acc, taps, samples):
 
 
 @njit(cache=True, fastmath=True, nogil=True, inline="never")
-def _multiply_add_4(acc, h1, x1, h2, x2, h3, x3, h4, x4):
+def _multiply_add_4(acc, h1, x1, h2, x2, h3, x3, h4, x4) -> None:
     """acc += h1*x1 + h2*x2 + h3*x3 + h4*x4: one load and store of acc for four rows of taps."""
     for t in range(h1.shape[0]):
         acc[2 * t] += (h1[t] * x1[2 * t] + h2[t] * x2[2 * t]) + (h3[t] * x3[2 * t] + h4[t] * x4[2 * t])
@@ -37,7 +37,7 @@ def _multiply_add_4(acc, h1, x1, h2, x2, h3, x3, h4, x4):
 
 
 @njit(cache=True, fastmath=True, nogil=True)
-def _fold_jit(buffer2, reversed_taps, channels, starts, offsets, out2):
+def _fold_jit(buffer2, reversed_taps, channels: int, starts, offsets, out2) -> None:
     taps = reversed_taps.shape[0]
     M = channels
     for f in range(starts.shape[0]):
@@ -64,7 +64,7 @@ def _fold_jit(buffer2, reversed_taps, channels, starts, offsets, out2):
 
 
 @njit(cache=True, fastmath=True, nogil=True)
-def _spread_jit(frames2, taps, decimation, channels, phase, out2):
+def _spread_jit(frames2, taps: np.ndarray, decimation: int, channels: int, phase, out2) -> None:
     n_taps = taps.shape[0]
     M = channels
     for f in range(frames2.shape[0]):
@@ -79,17 +79,17 @@ def _spread_jit(frames2, taps, decimation, channels, phase, out2):
             pos = 0
 
 
-def prepare_fold_taps(taps):
+def prepare_fold_taps(taps: np.ndarray):
     """float32 taps, reversed."""
     return np.ascontiguousarray(np.asarray(taps, dtype=np.float64)[::-1], dtype=np.float32)
 
 
-def prepare_spread_taps(taps):
+def prepare_spread_taps(taps: np.ndarray):
     """float32 taps."""
     return np.ascontiguousarray(taps, dtype=np.float32)
 
 
-def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
+def fold_frames(buffer, prepared_taps, channels: int, starts, offsets, out: np.ndarray) -> None:
     """Fast ``fold_frames``: ``buffer`` and ``out`` complex64 C-contiguous (``out`` overwritten)."""
     _fold_jit(buffer.view(np.float32), prepared_taps, channels,
               np.ascontiguousarray(starts, dtype=np.int64),
@@ -97,7 +97,7 @@ def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
               out.view(np.float32))
 
 
-def spread_frames(frames, prepared_taps, decimation, channels, phase, out):
+def spread_frames(frames, prepared_taps, decimation: int, channels: int, phase, out: np.ndarray) -> None:
     """Fast ``spread_frames``: ``frames`` and ``out`` complex64 C-contiguous (added to ``out``)."""
     _spread_jit(frames.view(np.float32), prepared_taps, decimation, channels,
                 phase, out.view(np.float32))

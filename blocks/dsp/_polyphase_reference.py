@@ -17,17 +17,18 @@ from numpy.lib.stride_tricks import sliding_window_view
 _MAX_BLOCK_ELEMENTS = 1 << 22
 
 
-def prepare_fold_taps(taps):
+def prepare_fold_taps(taps: np.ndarray) -> np.ndarray:
     """Taps in the form ``fold_frames`` wants: reversed, float64."""
     return np.asarray(taps, dtype=np.float64)[::-1].copy()
 
 
-def prepare_spread_taps(taps):
+def prepare_spread_taps(taps: np.ndarray) -> np.ndarray:
     """Taps in the form ``spread_frames`` wants: float64."""
     return np.asarray(taps, dtype=np.float64).copy()
 
 
-def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
+def fold_frames(buffer: np.ndarray, prepared_taps: np.ndarray, channels: int, starts: np.ndarray, offsets: np.ndarray,
+                out: np.ndarray) -> None:
     """Weight and fold frames of ``buffer`` into ``out`` (overwritten).
 
     ``prepared_taps`` comes from ``prepare_fold_taps(taps)``. For frame ``f``
@@ -58,7 +59,8 @@ def fold_frames(buffer, prepared_taps, channels, starts, offsets, out):
         out[sel] = np.take_along_axis(folded, gather, axis=1)
 
 
-def spread_frames(frames, prepared_taps, decimation, channels, phase, out):
+def spread_frames(frames: np.ndarray, prepared_taps: np.ndarray, decimation: int, channels: int, phase: int,
+                  out: np.ndarray) -> None:
     """Overlap-add periodic frames into ``out`` (added in place).
 
     ``prepared_taps`` comes from ``prepare_spread_taps(taps)``.

@@ -16,12 +16,12 @@ off after ``min_duration`` of consecutive *below* intervals.
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
 from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
+
+from .errors import ParameterError
 
 
 @dataclass
@@ -32,13 +32,14 @@ class Event:
     kind: str          # "on" or "off"
 
 
-def _db(power):
+def _db(power: np.ndarray) -> np.ndarray:
     return 10 * np.log10(np.maximum(power, 1e-30))
 
 
 class ActivityDetector:
-    def __init__(self, columns, rate, *, interval=0.05, threshold=10.0, hysteresis=4.0, min_duration=0.1,
-                 floor_history=20, keep_levels=False):
+    def __init__(self, columns: int, rate: float, *, interval: float = 0.05, threshold: float = 10.0,
+                 hysteresis: float = 4.0, min_duration: float = 0.1,
+                 floor_history: int = 20, keep_levels: bool = False) -> None:
         for name, value in (("interval", interval), ("threshold", threshold)):
             if not value > 0:
                 raise ParameterError(f"Parameter {name}={value!r} is not > 0!", param=name)
@@ -52,8 +53,8 @@ class ActivityDetector:
         self.threshold = threshold
         self.hysteresis = hysteresis
         self.min_intervals = max(1, int(round(min_duration / self.interval)))
-        self.floor_values = deque(maxlen=floor_history)
-        self.own_history = [deque(maxlen=200) for _ in range(self.columns)]
+        self.floor_values: deque[float] = deque(maxlen=floor_history)
+        self.own_history: list[deque[float]] = [deque(maxlen=200) for _ in range(self.columns)]
         self.partial = np.zeros(self.columns)
         self.partial_rows = 0
         self.intervals = 0
@@ -68,10 +69,10 @@ class ActivityDetector:
         self.power_sum = np.zeros(self.columns)
         self.floor_db = np.nan
         self.keep_levels = keep_levels
-        self.levels = []          # per interval: level_db row (when keep_levels)
-        self.states = []          # per interval: on flags (when keep_levels)
+        self.levels: list[np.ndarray] = []          # per interval: level_db row (when keep_levels)
+        self.states: list[np.ndarray] = []          # per interval: on flags (when keep_levels)
 
-    def process(self, rows):
+    def process(self, rows: np.ndarray) -> list[Event]:
         """Take rows ``(n, C)`` (or ``(n,)`` for one channel); return the events they complete."""
         rows = np.asarray(rows)
         if rows.ndim == 1:
@@ -90,7 +91,7 @@ class ActivityDetector:
                 self.partial_rows = 0
         return events
 
-    def _floor(self, level):
+    def _floor(self, level: np.ndarray) -> np.ndarray:
         if self.columns >= 4:
             self.floor_values.append(float(np.median(level)))
             return np.full(self.columns, float(np.median(self.floor_values)))
@@ -98,7 +99,7 @@ class ActivityDetector:
             self.own_history[c].append(level[c])
         return np.array([np.percentile(self.own_history[c], 10) for c in range(self.columns)])
 
-    def _interval(self, power):
+    def _interval(self, power: np.ndarray) -> list[Event]:
         level = _db(power)
         floor = self._floor(level)
         self.floor_db = float(np.median(floor))
@@ -144,7 +145,7 @@ class ActivityDetector:
             self.states.append(self.on.copy())
         return events
 
-    def finish(self):
+    def finish(self) -> list[Event]:
         """Close channels still on at the end with an "off" event dated at the end."""
         end = self.intervals * self.interval
         events = [Event(end, c, float(_db(self.on_power[c] / max(self.on_count[c], 1))), "off")
@@ -152,7 +153,7 @@ class ActivityDetector:
         self.on[:] = False
         return events
 
-    def summary(self):
+    def summary(self) -> list[dict[str, float]]:
         """Per column: duty cycle (0..1), peak and mean level over the stream, and the mean level
         while on (dBFS; NaN for a channel never on)."""
         n = max(self.intervals, 1)

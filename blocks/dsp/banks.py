@@ -38,23 +38,24 @@ frame, then a weighted periodic overlap-add. The hot loops run in numba
 
 from __future__ import annotations
 
-from .errors import ParameterError
+from importlib import import_module
+from types import ModuleType
 
 import numpy as np
 import scipy.fft
 
-from importlib import import_module
+from .errors import ParameterError
 
 _KERNEL_MODULES = {"fast": "._polyphase_fast", "reference": "._polyphase_reference"}
 _KERNEL_DTYPES = {"fast": np.complex64, "reference": np.complex128}
 
 
-def _load_kernel(name):
+def _load_kernel(name: str) -> ModuleType:
     """The kernel module, imported on first use (numba takes a while to load)."""
     return import_module(_KERNEL_MODULES[name], __package__)
 
 
-def _check_geometry(channels, step, step_name):
+def _check_geometry(channels: int, step: int, step_name: str) -> tuple[int, int]:
     if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
         raise ParameterError(f"Parameter channels={channels!r} is not an integer >= 2!", param="channels")
     if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 1:
@@ -66,7 +67,7 @@ def _check_geometry(channels, step, step_name):
     return int(channels), int(step)
 
 
-def _check_taps(taps):
+def _check_taps(taps: np.ndarray) -> np.ndarray:
     array = np.asarray(taps)
     if array.ndim != 1 or array.size == 0:
         raise ParameterError(f"Parameter taps must be a non-empty 1-D array, got shape {array.shape}!", param="taps")
@@ -79,13 +80,13 @@ def _check_taps(taps):
     return array
 
 
-def _check_kernel(kernel):
+def _check_kernel(kernel: str) -> str:
     if kernel not in _KERNEL_MODULES:
         raise ParameterError(f"Parameter kernel={kernel!r} is not one of {sorted(_KERNEL_MODULES)}!", param="kernel")
     return kernel
 
 
-def channel_offsets(channels):
+def channel_offsets(channels: int) -> np.ndarray:
     """Channel centre offsets in cycles per input sample, FFT order (see module doc)."""
     return np.fft.fftfreq(channels)
 
@@ -98,7 +99,7 @@ class AnalysisBank:
     complex64 array, channels in FFT order.
     """
 
-    def __init__(self, channels, decimation, taps, *, kernel="fast"):
+    def __init__(self, channels: int, decimation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:
         self._channels, self._decimation = _check_geometry(channels, decimation, "decimation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
@@ -119,17 +120,17 @@ class AnalysisBank:
     samples_consumed = property(lambda self: self._consumed, doc="Input samples taken so far.")
     frames_produced = property(lambda self: self._frames, doc="Frames returned so far.")
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return (f"AnalysisBank(channels={self._channels}, decimation={self._decimation}, "
                 f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
 
-    def reset(self):
+    def reset(self) -> None:
         """Forget all input: the next sample given is absolute sample 0 again."""
         self._history = np.zeros(len(self._taps) - 1, dtype=np.complex64)
         self._consumed = 0
         self._frames = 0
 
-    def process(self, x):
+    def process(self, x: np.ndarray) -> np.ndarray:
         """Take the next chunk of input; return the frames it completes, shape ``(F, M)``."""
         x = np.asarray(x)
         if x.ndim != 1:
@@ -141,7 +142,7 @@ class AnalysisBank:
         total_frames = -(-self._consumed // D)
         frame_numbers = np.arange(self._frames, total_frames, dtype=np.int64)
         self._frames = total_frames
-        out = np.empty((len(frame_numbers), M), dtype=self._work_dtype)
+        out: np.ndarray = np.empty((len(frame_numbers), M), dtype=self._work_dtype)
         # Absolute index of each frame's first window sample; a frame whose
         # window starts before x[0] reads from (history + head of x), the rest
         # read straight from x without copying the chunk.
@@ -160,7 +161,7 @@ class AnalysisBank:
             out = scipy.fft.fft(out, axis=1, overwrite_x=True, workers=1)
         return out.astype(np.complex64, copy=False)
 
-    def skip(self, count):
+    def skip(self, count: int) -> np.ndarray:
         """Advance absolute time by ``count`` missing input samples, taken as zeros.
 
         Returns the frames that still see real samples in their window (as
@@ -180,7 +181,7 @@ class AnalysisBank:
             self._frames = -(-self._consumed // self._decimation)
         return frames
 
-    def _fold(self, buffer, starts, absolute_starts, out):
+    def _fold(self, buffer: np.ndarray, starts: np.ndarray, absolute_starts: np.ndarray, out: np.ndarray) -> None:
         self._kernel.fold_frames(buffer, self._prepared, self._channels, starts, absolute_starts % self._channels, out)
 
 
@@ -192,7 +193,7 @@ class SynthesisBank:
     complex64 samples.
     """
 
-    def __init__(self, channels, interpolation, taps, *, kernel="fast"):
+    def __init__(self, channels: int, interpolation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:
         self._channels, self._interpolation = _check_geometry(channels, interpolation, "interpolation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
@@ -207,16 +208,16 @@ class SynthesisBank:
     kernel = property(lambda self: self._kernel_name, doc="'fast' (numba) or 'reference' (numpy).")
     frames_consumed = property(lambda self: self._frames, doc="Frames taken so far.")
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return (f"SynthesisBank(channels={self._channels}, interpolation={self._interpolation}, "
                 f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
 
-    def reset(self):
+    def reset(self) -> None:
         """Forget all frames: the next frame given is frame 0 again."""
-        self._pending = np.zeros(len(self._taps), dtype=self._work_dtype)
+        self._pending: np.ndarray = np.zeros(len(self._taps), dtype=self._work_dtype)
         self._frames = 0
 
-    def process(self, frames):
+    def process(self, frames: np.ndarray) -> np.ndarray:
         """Take the next frames, shape ``(F, M)``; return the ``F * D`` samples they complete."""
         frames = np.asarray(frames)
         M, D, L = self._channels, self._interpolation, len(self._taps)
@@ -228,14 +229,14 @@ class SynthesisBank:
         periodic = scipy.fft.ifft(frames.astype(self._work_dtype, copy=False), axis=1,
                                   norm="forward", workers=1)
         periodic = np.ascontiguousarray(periodic, dtype=self._work_dtype)
-        out = np.zeros(count * D + L, dtype=self._work_dtype)
+        out: np.ndarray = np.zeros(count * D + L, dtype=self._work_dtype)
         out[:L] = self._pending
         self._kernel.spread_frames(periodic, self._prepared, D, M, (self._frames * D) % M, out)
         self._frames += count
         self._pending = out[count * D:].copy()
         return out[:count * D].astype(np.complex64, copy=False)
 
-    def skip(self, count):
+    def skip(self, count: int) -> np.ndarray:
         """Advance by ``count`` missing frames, taken as zeros.
 
         Returns the output samples that still carry earlier frames' tails;

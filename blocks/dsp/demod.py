@@ -33,7 +33,8 @@ def _check_demod_numbers(**values: float) -> None:
 
 
 class FMDemodulator:
-    def __init__(self, rate, *, full_scale=5000.0, deemphasis=0.0, squelch=None, squelch_time=0.002):
+    def __init__(self, rate: float, *, full_scale: float = 5000.0, deemphasis: float = 0.0,
+                 squelch: float | None = None, squelch_time: float = 0.002) -> None:
         _check_demod_numbers(rate=rate, full_scale=full_scale)
         if not deemphasis >= 0:
             raise ParameterError(f"Parameter {deemphasis=} is not >= 0!", param="deemphasis")
@@ -43,7 +44,8 @@ class FMDemodulator:
         self.started = False
         if deemphasis:
             pole = np.exp(-1.0 / (self.rate * deemphasis))
-            self.b, self.a = np.array([1 - pole]), np.array([1.0, -pole])
+            self.b: np.ndarray | None = np.array([1 - pole])
+            self.a = np.array([1.0, -pole])
             self.state = np.zeros(1)
         else:
             self.b = None
@@ -52,7 +54,7 @@ class FMDemodulator:
         self.power_filter = (np.array([1 - pole]), np.array([1.0, -pole]))
         self.power_state = np.zeros(1)
 
-    def process(self, x):
+    def process(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=np.complex64)
         if len(x) == 0:
             return np.zeros(0, np.float32)
@@ -68,7 +70,7 @@ class FMDemodulator:
 
 
 class AMDemodulator:
-    def __init__(self, rate, *, dc_cutoff=10.0):
+    def __init__(self, rate: float, *, dc_cutoff: float = 10.0) -> None:
         self.rate = float(rate)
         pole = np.exp(-2 * np.pi * dc_cutoff / self.rate)
         one = np.poly1d([1.0, -pole])
@@ -76,7 +78,7 @@ class AMDemodulator:
         self.a = (one * one).coeffs
         self.state = None
 
-    def process(self, x):
+    def process(self, x: np.ndarray) -> np.ndarray:
         envelope = np.abs(np.asarray(x, dtype=np.complex64)).astype(np.float64)
         if len(envelope) == 0:
             return np.zeros(0, np.float32)

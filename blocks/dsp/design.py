@@ -36,16 +36,16 @@ is exactly 1: ``g[t] = c * h[delay - t]``.
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
 from dataclasses import dataclass, field
 from functools import cached_property
+from typing import Any
 
 import numpy as np
 
 from .banks import AnalysisBank, SynthesisBank, _check_geometry
+from .errors import ParameterError
 from .figures import ResponseFigures, response_figures
-from .frames import frame_bounds, round_trip_transfer, tight_window
+from .frames import RoundTrip, frame_bounds, round_trip_transfer, tight_window
 
 SHAPES = ("root-raised-cosine", "low-pass", "rectangle")
 
@@ -57,7 +57,7 @@ DEFAULT_CRITICAL_TAPS_PER_BRANCH = 8
 DEFAULT_CRITICAL_STOPBAND_DB = 90.0
 
 
-def root_raised_cosine(t, rolloff):
+def root_raised_cosine(t: np.ndarray, rolloff: float) -> np.ndarray:
     """Root-raised-cosine pulse at ``t`` symbol periods (unit energy per symbol).
 
     The textbook closed form, with its two removable singularities at
@@ -77,7 +77,7 @@ def root_raised_cosine(t, rolloff):
     return np.where(at_pole, pole_value, value)
 
 
-def _window(window, length, stopband_db):
+def _window(window: str, length: int, stopband_db: float) -> np.ndarray:
     import scipy.signal
     if window == "kaiser":
         return scipy.signal.windows.kaiser(length, scipy.signal.kaiser_beta(stopband_db), sym=True)
@@ -104,13 +104,13 @@ class BankDesign:
     delay: int
 
     @property
-    def oversampling(self):
+    def oversampling(self) -> int:
         return self.channels // self.decimation
 
     @property
-    def passband_edge(self):
+    def passband_edge(self) -> float:
         """Edge of the flat part, channel spacings: ``(1 - rolloff) / 2`` or 0.25."""
-        if self.shape == "root-raised-cosine":
+        if self.shape == "root-raised-cosine" and self.rolloff is not None:
             return (1 - self.rolloff) / 2
         return 0.25
 
@@ -120,28 +120,28 @@ class BankDesign:
         return response_figures(self.analysis_taps, self.channels, passband_edge=self.passband_edge)
 
     @cached_property
-    def frame_bounds(self):
+    def frame_bounds(self) -> tuple[float, float]:
         """``(A, B)`` of the analysis taps on this lattice (:func:`.frames.frame_bounds`)."""
         return frame_bounds(self.analysis_taps, self.channels, self.decimation)
 
     @cached_property
-    def round_trip(self):
+    def round_trip(self) -> RoundTrip:
         """Exact steady-state round trip (:func:`.frames.round_trip_transfer`), float64."""
         return round_trip_transfer(self.analysis_taps, self.synthesis_taps,
                                    self.channels, self.decimation, self.delay)
 
     @property
-    def round_trip_error_db(self):
+    def round_trip_error_db(self) -> float:
         """Relative RMS round-trip error for white input, dB (float64 arithmetic)."""
         return self.round_trip.error_db
 
-    def analysis_bank(self, *, kernel="fast"):
+    def analysis_bank(self, *, kernel: str = "fast") -> AnalysisBank:
         return AnalysisBank(self.channels, self.decimation, self.analysis_taps, kernel=kernel)
 
-    def synthesis_bank(self, *, kernel="fast"):
+    def synthesis_bank(self, *, kernel: str = "fast") -> SynthesisBank:
         return SynthesisBank(self.channels, self.decimation, self.synthesis_taps, kernel=kernel)
 
-    def figures(self):
+    def figures(self) -> dict[str, Any]:
         """All figures as a flat dict of plain numbers and strings (for tables and JSON)."""
         a, b = self.frame_bounds
         out = {
@@ -165,7 +165,7 @@ class BankDesign:
         return out
 
 
-def _validate_number(name, value, low, high, *, integer=False):
+def _validate_number(name: str, value: Any, low: float, high: float, *, integer: bool = False) -> Any:
     if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
         raise ParameterError(f"Parameter {name}={value!r} is not a number!", param=name)
     if integer and int(value) != value:
@@ -175,9 +175,10 @@ def _validate_number(name, value, low, high, *, integer=False):
     return int(value) if integer else float(value)
 
 
-def design_bank(channels, decimation=None, *, oversample=None, shape=None,
-                taps_per_branch=None, rolloff=None, stopband_db=None, window="kaiser",
-                tight=None, tight_margin=None):
+def design_bank(channels: int, decimation: int | None = None, *, oversample: int | None = None,
+                shape: str | None = None, taps_per_branch: int | None = None, rolloff: float | None = None,
+                stopband_db: float | None = None, window: str = "kaiser", tight: bool | None = None,
+                tight_margin: int | None = None) -> BankDesign:
     """Design a matched analysis/synthesis pair; see the module doc for the shapes.
 
     Give ``decimation`` (D, dividing ``channels``) or ``oversample`` (M // D);
@@ -244,7 +245,8 @@ def design_bank(channels, decimation=None, *, oversample=None, shape=None,
     return _matched(M, D, shape, window, R, None, att, False, taps / taps.sum())
 
 
-def _matched(M, D, shape, window, R, rolloff, stopband_db, tight, taps):
+def _matched(M: int, D: int, shape: str, window: str, R: int, rolloff: float | None, stopband_db: float | None,
+             tight: bool, taps: np.ndarray) -> BankDesign:
     taps = np.asarray(taps, dtype=np.float64)
     delay = M * (-(-(len(taps) - 1) // M))
     synthesis = np.zeros(delay + 1)

@@ -10,19 +10,20 @@ figures are the classic window figures of merit (Harris, Proc. IEEE 66(1),
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
 
+from .errors import ParameterError
 
-def _fft_size(length, channels, points_per_channel):
+
+def _fft_size(length: int, channels: int, points_per_channel: int) -> int:
     size = max(points_per_channel * channels, 4 * length)
     return 1 << int(np.ceil(np.log2(size)))
 
 
-def frequency_response(taps, channels, *, points_per_channel=64):
+def frequency_response(taps: np.ndarray, channels: int, *, points_per_channel: int = 64) -> tuple[np.ndarray, np.ndarray]:
     """Response on a dense grid: ``(offsets, response)``.
 
     ``offsets`` are channel spacings from the centre, ascending, covering the
@@ -40,7 +41,7 @@ def frequency_response(taps, channels, *, points_per_channel=64):
     return offsets, response
 
 
-def response_at(taps, channels, offset):
+def response_at(taps: np.ndarray, channels: int, offset: float) -> complex:
     """Exact response (DTFT) at ``offset`` channel spacings, relative to the centre."""
     taps = np.asarray(taps)
     n = np.arange(len(taps))
@@ -48,7 +49,7 @@ def response_at(taps, channels, offset):
     return value / taps.sum()
 
 
-def cost_ratio(taps_per_branch, channels):
+def cost_ratio(taps_per_branch: float, channels: int) -> float:
     """Cost of a polyphase DFT bank relative to a bare M-point FFT per frame.
 
     ``1 + R / log2(M)`` for ``R`` taps per branch: per frame the bank does
@@ -59,11 +60,11 @@ def cost_ratio(taps_per_branch, channels):
     return 1.0 + taps_per_branch / np.log2(channels)
 
 
-def _to_db(magnitude):
+def _to_db(magnitude: Any) -> Any:
     return 20.0 * np.log10(np.maximum(magnitude, 1e-300))
 
 
-def _crossing(offsets, level_db, threshold_db):
+def _crossing(offsets: np.ndarray, level_db: np.ndarray, threshold_db: float) -> float:
     """First positive offset where ``level_db`` falls to ``threshold_db`` (linear interpolation)."""
     positive = offsets >= 0
     f, level = offsets[positive], level_db[positive]
@@ -111,11 +112,12 @@ class ResponseFigures:
     worst_case_processing_loss_db: float
     cost_ratio: float
 
-    def as_dict(self):
+    def as_dict(self) -> dict[str, float]:
         return asdict(self)
 
 
-def response_figures(taps, channels, *, passband_edge=0.25, points_per_channel=64):
+def response_figures(taps: np.ndarray, channels: int, *, passband_edge: float = 0.25,
+                     points_per_channel: int = 64) -> ResponseFigures:
     """Compute :class:`ResponseFigures` for real or complex ``taps`` in an M-channel bank.
 
     ``passband_edge`` (channel spacings) bounds the flat part over which the

@@ -26,18 +26,18 @@ window ``Z / sqrt(sigma)``. ``theta`` is sampled on a uniform grid of
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
 from dataclasses import dataclass
 
 import numpy as np
 
+from .errors import ParameterError
 
-def _default_grid(branches):
+
+def _default_grid(branches: int) -> int:
     return max(64, 8 * (1 << int(np.ceil(np.log2(max(branches, 1))))))
 
 
-def _branches(window, channels):
+def _branches(window: np.ndarray, channels: int) -> np.ndarray:
     window = np.asarray(window)
     branches = -(-len(window) // channels)
     padded = np.zeros(branches * channels, dtype=window.dtype)
@@ -46,7 +46,7 @@ def _branches(window, channels):
     return padded.reshape(branches, channels)
 
 
-def zak_transform(window, channels, *, grid=None):
+def zak_transform(window: np.ndarray, channels: int, *, grid: int | None = None) -> np.ndarray:
     """Zak transform ``Z[n, j] = Z(n, j / grid)``, shape ``(channels, grid)``."""
     rows = _branches(window, channels)
     grid = grid or _default_grid(len(rows))
@@ -55,14 +55,14 @@ def zak_transform(window, channels, *, grid=None):
     return np.fft.fft(rows, n=grid, axis=0).T
 
 
-def frame_function(window, channels, decimation, *, grid=None):
+def frame_function(window: np.ndarray, channels: int, decimation: int, *, grid: int | None = None) -> np.ndarray:
     """``sigma(n, theta)`` on the grid, shape ``(channels, grid)`` (see module doc)."""
     z2 = np.abs(zak_transform(window, channels, grid=grid)) ** 2
     p = channels // decimation
     return channels * sum(np.roll(z2, q * decimation, axis=0) for q in range(p))
 
 
-def frame_bounds(window, channels, decimation, *, grid=None):
+def frame_bounds(window: np.ndarray, channels: int, decimation: int, *, grid: int | None = None) -> tuple[float, float]:
     """Frame bounds ``(A, B)``: ``A = min sigma``, ``B = max sigma``.
 
     ``B / A`` is the condition number: 1 for a tight frame, large when the
@@ -72,7 +72,8 @@ def frame_bounds(window, channels, decimation, *, grid=None):
     return float(sigma.min()), float(sigma.max())
 
 
-def _apply_zak_gain(window, channels, decimation, power, grid, length):
+def _apply_zak_gain(window: np.ndarray, channels: int, decimation: int, power: float, grid: int | None,
+                    length: int | None) -> np.ndarray:
     window = np.asarray(window, dtype=np.float64)
     rows = _branches(window, channels)
     grid = grid or _default_grid(len(rows))
@@ -86,7 +87,8 @@ def _apply_zak_gain(window, channels, decimation, power, grid, length):
     return out[:length or len(window)].copy()
 
 
-def tight_window(window, channels, decimation, *, grid=None, length=None):
+def tight_window(window: np.ndarray, channels: int, decimation: int, *, grid: int | None = None,
+                 length: int | None = None) -> np.ndarray:
     """Canonical tight window ``S^(-1/2) h``, truncated to ``length`` taps (default ``len(h)``).
 
     The exact tight window is infinitely long in general; it is computed on a
@@ -96,7 +98,8 @@ def tight_window(window, channels, decimation, *, grid=None, length=None):
     return _apply_zak_gain(window, channels, decimation, 0.5, grid, length)
 
 
-def dual_window(window, channels, decimation, *, grid=None, length=None):
+def dual_window(window: np.ndarray, channels: int, decimation: int, *, grid: int | None = None,
+                length: int | None = None) -> np.ndarray:
     """Canonical dual window ``S^(-1) h``, truncated to ``length`` taps (default ``len(h)``)."""
     return _apply_zak_gain(window, channels, decimation, 1.0, grid, length)
 
@@ -118,11 +121,12 @@ class RoundTrip:
     relative_error: float
 
     @property
-    def error_db(self):
+    def error_db(self) -> float:
         return float(20 * np.log10(max(self.relative_error, 1e-15)))
 
 
-def round_trip_transfer(analysis_taps, synthesis_taps, channels, decimation, delay):
+def round_trip_transfer(analysis_taps: np.ndarray, synthesis_taps: np.ndarray, channels: int, decimation: int,
+                        delay: int) -> RoundTrip:
     """The round trip's transfer (see :class:`RoundTrip`) for a given delay (multiple of M).
 
     Derivation, with the bank conventions of :mod:`.banks`: substituting the

@@ -3,7 +3,7 @@
 import numpy as np
 
 
-def shift_frequency(data, first_index, cycles_per_sample):
+def shift_frequency(data: np.ndarray, first_index: int, cycles_per_sample: float) -> np.ndarray:
     """``data * exp(2j pi f m)`` with ``m`` the absolute index of each sample and ``f`` in cycles per sample.
 
     The phase is reduced modulo one cycle from the absolute index, so it is

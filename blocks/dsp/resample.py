@@ -15,15 +15,15 @@ path.
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
 from math import gcd
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
+from .errors import ParameterError
 
-def resample_poly_taps(up, down, window=("kaiser", 5.0)):
+
+def resample_poly_taps(up: int, down: int, window: object = ("kaiser", 5.0)) -> tuple[np.ndarray, int, int, int]:
     """The filter resample_poly uses, with its front padding; returns (taps, drop, up, down)."""
     import scipy.signal
 
@@ -40,7 +40,7 @@ def resample_poly_taps(up, down, window=("kaiser", 5.0)):
 class Resampler:
     """Streaming ``up/down`` resampler, complex or real input (see module doc)."""
 
-    def __init__(self, up, down):
+    def __init__(self, up: int, down: int) -> None:
         for name, value in (("up", up), ("down", down)):
             if value < 1:
                 raise ParameterError(f"Parameter {name}={value} is not a whole number >= 1!", param=name)
@@ -53,13 +53,13 @@ class Resampler:
         self.taps_length = len(taps)
         self.reset()
 
-    def reset(self):
-        self.history = None
+    def reset(self) -> None:
+        self.history: np.ndarray | None = None
         self.consumed = 0       # input samples taken
         self.produced = 0       # outputs of the full upfirdn computed (before dropping)
         self.emitted = 0        # outputs returned
 
-    def _outputs(self, buffer, first_index, limit):
+    def _outputs(self, buffer: np.ndarray, first_index: int, limit: int) -> np.ndarray:
         """Full-upfirdn outputs j from self.produced while their last needed input < limit."""
         K = self.branch_len
         # output j needs inputs up to floor(j*down/up); emit while that is < limit
@@ -74,11 +74,11 @@ class Resampler:
         self.produced = int(last) + 1
         return out
 
-    def _take(self, full):
+    def _take(self, full: np.ndarray) -> np.ndarray:
         skip = max(0, min(len(full), self.drop - (self.produced - len(full))))
         return full[skip:]
 
-    def process(self, x):
+    def process(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x)
         dtype = np.complex128 if np.iscomplexobj(x) else np.float64
         K = self.branch_len
@@ -92,7 +92,7 @@ class Resampler:
         self.emitted += len(out)
         return out
 
-    def finish(self):
+    def finish(self) -> np.ndarray:
         """The last outputs, computed with the zero padding resample_poly uses."""
         total = self.consumed * self.up
         wanted = total // self.down + bool(total % self.down)
@@ -102,7 +102,7 @@ class Resampler:
         # Pad with zeros up to the last input that output (wanted + drop - 1) needs.
         last_output = wanted + self.drop - 1
         pad = max(1, (last_output * self.down) // self.up + 1 - self.consumed)
-        produced = self.process(np.zeros(pad, dtype=self.history.dtype))
+        produced = self.process(np.zeros(pad, dtype=self.history.dtype if self.history is not None else np.float64))
         self.consumed -= pad                   # padding is not input
         tail = produced[:missing]
         self.emitted = wanted

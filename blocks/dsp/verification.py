@@ -18,17 +18,21 @@ Test signals (unit RMS, complex):
 
 from __future__ import annotations
 
-from .errors import ParameterError
-
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
+
+from .banks import AnalysisBank
+from .design import BankDesign
+from .errors import ParameterError
 
 SIGNALS = ("noise", "comb", "chirp", "tone")
 TONE_OFFSET = 3.3          # channel spacings: the single tone's frequency times M
 
 
-def probe_signal(kind, length, channels, *, seed=0):
+def probe_signal(kind: str, length: int, channels: int, *, seed: int = 0) -> np.ndarray:
     """One of SIGNALS, ``length`` complex64 samples, unit RMS (see module doc)."""
     rng = np.random.default_rng(seed)
     m = np.arange(length)
@@ -50,13 +54,13 @@ def probe_signal(kind, length, channels, *, seed=0):
     return x.astype(np.complex64)
 
 
-def comb_frequencies(channels):
+def comb_frequencies(channels: int) -> np.ndarray:
     """The comb's tone frequencies in cycles per sample."""
     offsets = np.concatenate([np.arange(channels), np.arange(channels) + 0.5, np.arange(channels) + 0.25])
     return np.mod(offsets / channels + 0.5, 1.0) - 0.5
 
 
-def estimate_delay(reference, output, max_delay):
+def estimate_delay(reference: np.ndarray, output: np.ndarray, max_delay: int) -> int:
     """Lag (0..max_delay) maximising |sum output[m + d] conj(reference[m])| by FFT cross-correlation."""
     size = 1 << int(np.ceil(np.log2(len(reference) + len(output))))
     corr = np.fft.ifft(np.fft.fft(output, size) * np.conj(np.fft.fft(reference, size)))
@@ -79,21 +83,22 @@ class SignalResult:
     alias_db: float | None = None                         # tone only: worst alias/image relative to the tone
     spectrum: tuple = field(default=(), repr=False)       # (frequencies, input dB, error dB) for plots
 
-    def worst_channel(self):
+    def worst_channel(self) -> tuple[int, float]:
         k = int(np.argmax(self.band_error_db))
         return k, float(self.band_error_db[k])
 
 
-def _db(x):
+def _db(x: Any) -> Any:
     return 10 * np.log10(np.maximum(x, 1e-30))
 
 
-def _level_at(signal, window, frequency):
+def _level_at(signal: np.ndarray, window: np.ndarray, frequency: float) -> float:
     m = np.arange(len(signal))
     return abs(np.sum(signal * window * np.exp(-2j * np.pi * frequency * m))) ** 2
 
 
-def analyse_round_trip(signal_name, x, y, channels, *, expected_delay=None, max_delay=None, decimation=None):
+def analyse_round_trip(signal_name: str, x: np.ndarray, y: np.ndarray, channels: int, *, expected_delay: int | None = None,
+                       max_delay: int | None = None, decimation: int | None = None) -> SignalResult:
     """Compare input ``x`` with round-trip output ``y`` (same rate); see SignalResult."""
     x = np.asarray(x, dtype=np.complex128)
     y = np.asarray(y, dtype=np.complex128)
@@ -142,12 +147,13 @@ def analyse_round_trip(signal_name, x, y, channels, *, expected_delay=None, max_
         spectrum=(freqs[order] * channels, _db(spec_ref[order] / spec_ref.max()), _db(spec_err[order] / spec_ref.max())))
 
 
-def _blackman_harris(n):
+def _blackman_harris(n: int) -> np.ndarray:
     import scipy.signal
     return scipy.signal.get_window("blackmanharris", n, fftbins=True)
 
 
-def round_trip_in_process(design, signals=SIGNALS, *, frames=64, seed=0):
+def round_trip_in_process(design: BankDesign, signals: Sequence[str] = SIGNALS, *, frames: int = 64,
+                          seed: int = 0) -> list[SignalResult]:
     """Run each test signal through the design's banks in this process; list of SignalResult."""
     M = design.channels
     length = max(frames * M, 1 << 14) + 2 * design.delay
@@ -170,7 +176,7 @@ class ToneMeasurement:
     decimation: int
     channels: int
 
-    def figures(self, passband_edge):
+    def figures(self, passband_edge: float) -> dict[str, float]:
         f, lv = self.offsets, self.level_db
         flat = lv[np.abs(f) <= passband_edge + 1e-9]
         p = self.channels // self.decimation
@@ -187,7 +193,8 @@ class ToneMeasurement:
         }
 
 
-def measure_channel_response(bank_factory, channels, *, steps_per_spacing=32, frames=None, span=None, seed=0):
+def measure_channel_response(bank_factory: Callable[[], AnalysisBank], channels: int, *, steps_per_spacing: int = 32,
+                             frames: int | None = None, span: float | None = None, seed: int = 0) -> ToneMeasurement:
     """Measure |H| of the channels with tones run through a real analysis bank.
 
     ``bank_factory()`` returns a fresh AnalysisBank. A tone at ``f`` cycles per
@@ -204,7 +211,8 @@ def measure_channel_response(bank_factory, channels, *, steps_per_spacing=32, fr
     frames = frames or (settle + 64)
     length = frames * probe.decimation
     m = np.arange(length)
-    offsets, levels = [], []
+    offset_parts: list[np.ndarray] = []
+    level_parts: list[np.ndarray] = []
     for j in range(steps_per_spacing):
         f = j / steps_per_spacing / channels
         tone = np.exp(2j * np.pi * f * m).astype(np.complex64)
@@ -212,10 +220,10 @@ def measure_channel_response(bank_factory, channels, *, steps_per_spacing=32, fr
         power = np.mean(np.abs(out.astype(np.complex128)) ** 2, axis=0)      # one value per channel
         k = np.arange(channels)
         offset = (j / steps_per_spacing - k + channels / 2) % channels - channels / 2
-        offsets.append(offset)
-        levels.append(power)
-    offsets = np.concatenate(offsets)
-    levels = np.concatenate(levels)
+        offset_parts.append(offset)
+        level_parts.append(power)
+    offsets = np.concatenate(offset_parts)
+    levels = np.concatenate(level_parts)
     order = np.argsort(offsets)
     offsets, levels = offsets[order], levels[order]
     centre = levels[np.argmin(np.abs(offsets))]

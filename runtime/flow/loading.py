@@ -11,7 +11,7 @@ from ..plugins import Registry
 from .declarations import read_tables
 from .expansion import check_inputs, expand, wiring_order
 from .locator import KeyLocator
-from .model import Flow
+from .model import Flow, Instance, Link
 from .problems import FlowErrors, Problem, ProblemLog, syntax_problem
 
 __all__ = ["check_flow", "load_flow"]
@@ -31,7 +31,8 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
     decls, links = tables.declarations, tables.links
     order = wiring_order(log, decls, links)
     check_inputs(log, decls, links, tables.claimed)
-    instances, expanded = ({}, [])
+    instances: dict[str, Instance] = {}
+    expanded: list[Link] = []
     if order is not None:
         # streams are worked out for every block that was declared well, so that their
         # problems are reported along with the others
