@@ -15,10 +15,12 @@ from dataclasses import dataclass, field
 from importlib.metadata import entry_points
 
 from bandloom.blocks.block import Block, Param, Port
+from bandloom.blocks.params import KINDS
+
+__all__ = ["ENTRY_POINT_GROUP", "PluginError", "Registry", "load_registry", "validate_block_class"]
 
 ENTRY_POINT_GROUP = "bandloom.blocks"
-PARAM_KINDS = {"int", "float", "str", "bool", "choice", "quantity", "input-path", "output-path", "list",
-               "channels"}
+PARAM_KINDS = frozenset(KINDS)          # the rows of the kinds table
 PORT_KINDS = {"samples", "channels", "any"}
 
 
@@ -28,9 +30,11 @@ class PluginError(Exception):
 
 @dataclass
 class Registry:
-    types: dict = field(default_factory=dict)          # type name -> class
-    origins: dict = field(default_factory=dict)        # type name -> distribution name
-    failures: list = field(default_factory=list)       # one line per plugin that did not load
+    """The block types found: by type name, the class and the distribution that provides it."""
+
+    types: dict[str, type[Block]] = field(default_factory=dict)
+    origins: dict[str, str] = field(default_factory=dict)
+    failures: list[str] = field(default_factory=list)  # one line per plugin that did not load
 
     def names(self) -> list[str]:
         return sorted(self.types)

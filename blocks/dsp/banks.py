@@ -94,9 +94,34 @@ def channel_offsets(channels: int) -> np.ndarray:
 class AnalysisBank:
     """Streaming polyphase analysis bank (channelizer); conventions in the module doc.
 
-    ``AnalysisBank(channels=M, decimation=D, taps=h)``; ``process(x)`` takes a
-    1-D chunk of any length and returns the new frames as a ``(frames, M)``
-    complex64 array, channels in FFT order.
+    Parameters
+    ----------
+    channels : int
+        Number of channels M (>= 2).
+    decimation : int
+        Decimation D, dividing M; ``M // D`` is the oversampling factor.
+    taps : array_like
+        Real prototype low-pass taps h, any length; their sum is the passband gain.
+    kernel : {"fast", "reference"}, keyword-only
+        The numba kernel (complex64 arithmetic) or the plain numpy one (float64).
+
+    Notes
+    -----
+    ``process(x)`` takes a 1-D chunk of any length and returns the frames it
+    completes as a ``(frames, M)`` complex64 array, channels in FFT order;
+    after N input samples in all, ``ceil(N / D)`` frames have been returned.
+
+    Examples
+    --------
+    A tone at +1/8 cycle per sample lands in channel 1 of 8, at full level:
+
+    >>> import numpy as np
+    >>> bank = AnalysisBank(8, 4, np.full(8, 1 / 8))
+    >>> x = np.exp(2j * np.pi * np.arange(64) / 8).astype(np.complex64)
+    >>> frames = bank.process(x[:30])
+    >>> frames = np.concatenate([frames, bank.process(x[30:])])
+    >>> frames.shape, int(np.argmax(np.abs(frames[-1]))), round(float(abs(frames[-1, 1])), 6)
+    ((16, 8), 1, 1.0)
     """
 
     def __init__(self, channels: int, decimation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:
@@ -188,9 +213,36 @@ class AnalysisBank:
 class SynthesisBank:
     """Streaming polyphase synthesis bank; conventions in the module doc.
 
-    ``SynthesisBank(channels=M, interpolation=D, taps=g)``; ``process(Y)`` takes
-    a ``(frames, M)`` array (channels in FFT order) and returns ``frames * D``
-    complex64 samples.
+    Parameters
+    ----------
+    channels : int
+        Number of channels M (>= 2).
+    interpolation : int
+        Interpolation D, dividing M (the analysis bank's decimation).
+    taps : array_like
+        Real synthesis taps g; any scale is folded into them.
+    kernel : {"fast", "reference"}, keyword-only
+        The numba kernel (complex64 arithmetic) or the plain numpy one (float64).
+
+    Notes
+    -----
+    ``process(Y)`` takes a ``(frames, M)`` array (channels in FFT order) and
+    returns ``frames * D`` complex64 samples.
+
+    Examples
+    --------
+    A matched pair from :func:`~bandloom.blocks.dsp.design.design_bank` gives
+    the input back, delayed by the design's ``delay`` samples:
+
+    >>> import numpy as np
+    >>> from bandloom.blocks.dsp import design_bank
+    >>> design = design_bank(16, oversample=2)
+    >>> x = np.random.default_rng(1).standard_normal(4096).astype(np.complex64)
+    >>> y = design.synthesis_bank().process(design.analysis_bank().process(x))
+    >>> d = design.delay
+    >>> error = np.sum(np.abs(y[d:] - x[:len(y) - d]) ** 2) / np.sum(np.abs(x[:len(y) - d]) ** 2)
+    >>> bool(10 * np.log10(error) < -110)
+    True
     """
 
     def __init__(self, channels: int, interpolation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:

@@ -181,11 +181,42 @@ def design_bank(channels: int, decimation: int | None = None, *, oversample: int
                 tight_margin: int | None = None) -> BankDesign:
     """Design a matched analysis/synthesis pair; see the module doc for the shapes.
 
-    Give ``decimation`` (D, dividing ``channels``) or ``oversample`` (M // D);
-    the default is ``oversample=2``. Knobs left as None take the shape's
-    defaults: root-raised-cosine 16 taps per branch, rolloff 0.5, Kaiser
-    window for 95 dB, tight with 2 margin branches; low-pass 8 taps per
-    branch, Kaiser window for 90 dB.
+    Parameters
+    ----------
+    channels : int
+        Number of channels M (>= 2).
+    decimation : int, optional
+        Decimation D, dividing M. Give this or ``oversample``, not both.
+    oversample : int, optional, keyword-only
+        M // D; the default is 2 (twice oversampled).
+    shape : {"root-raised-cosine", "low-pass", "rectangle"}, optional
+        Prototype shape; default root-raised-cosine when oversampled, low-pass when critically sampled.
+    taps_per_branch, rolloff, stopband_db, window, tight, tight_margin : optional
+        Knobs of the shape; None takes the shape's default: root-raised-cosine 16 taps per
+        branch, rolloff 0.5, Kaiser window for 95 dB, tight with 2 margin branches; low-pass
+        8 taps per branch, Kaiser window for 90 dB. A knob that does not apply to the shape
+        is refused.
+
+    Returns
+    -------
+    BankDesign
+        Analysis and synthesis taps, the round-trip delay (a multiple of M) and figures.
+
+    Raises
+    ------
+    ParameterError
+        Naming the parameter and the rule it broke.
+
+    Examples
+    --------
+    >>> design = design_bank(64, oversample=2)
+    >>> design.decimation, design.delay, len(design.analysis_taps)
+    (32, 1024, 1025)
+    >>> bool(design.response.adjacent_rejection_db > 110), bool(design.round_trip_error_db < -120)
+    (True, True)
+    >>> design_bank(64, oversample=3)
+    Traceback (most recent call last):
+    bandloom.blocks.dsp.errors.ParameterError: Parameter oversample=3 does not divide channels=64!
     """
     if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
         raise ParameterError(f"Parameter channels={channels!r} is not an integer >= 2!", param="channels")

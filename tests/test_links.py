@@ -1,0 +1,116 @@
+"""One link's two ends over a real ipc socket: delivery, gaps, end of stream, drops, and their counters."""
+
+import numpy as np
+import pytest
+import zmq
+
+from bandloom.blocks.block import Chunk, StreamInfo
+from bandloom.runtime.flow.model import WhenFull
+from bandloom.runtime.links import Inlet, Outlet
+from bandloom.runtime.worker_spec import LinkSpec
+
+STREAM = StreamInfo("samples", "cf32", 48000.0, 156e6)
+
+
+@pytest.fixture
+def ends(tmp_path):
+    """An (outlet, inlet) pair factory on a private ipc endpoint; everything is closed afterwards."""
+    context = zmq.Context()
+    made = []
+
+    def make(*, queue=8, when_full=WhenFull.WAIT, columns=None, stream=STREAM):
+        endpoint = f"ipc://{tmp_path}/link-{len(made)}"
+        receiving = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=stream if columns is None
+                             else stream.select(list(columns)), bind=True, queue=queue)
+        sending = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=receiving.stream,
+                           columns=columns, queue=queue, when_full=when_full)
+        inlet = Inlet(context, receiving, "in")
+        outlet = Outlet(context, sending, lambda: False)
+        made.extend([outlet, inlet])
+        return outlet, inlet
+
+    yield make
+    for end in made:
+        end.close()
+    context.term()
+
+
+def test_samples_arrive_with_their_absolute_index(ends, rng):
+    """What is sent is what is received, in order, with first_index kept and the counters agreeing."""
+    outlet, inlet = ends()
+    data = (rng.standard_normal(3000) + 1j * rng.standard_normal(3000)).astype(np.complex64)
+    for start in range(0, 3000, 1000):
+        outlet.send(Chunk(data[start:start + 1000], start))
+    outlet.end()
+    got = [inlet.receive() for _ in range(3)]
+    assert [c.first_index for c in got] == [0, 1000, 2000]
+    assert np.array_equal(np.concatenate([c.data for c in got]), data)
+    assert inlet.receive() is None and inlet.ended
+    sent, received = outlet.stats(), inlet.stats()
+    assert sent.rows == received.rows == 3000 and sent.messages == received.messages == 3
+    assert sent.dropped_rows == sent.missing_rows == received.missing == 0
+
+
+def test_a_jump_in_index_is_a_counted_flagged_gap(ends):
+    """A chunk that starts later than the last one ended is sent flagged, with the missing rows counted."""
+    outlet, inlet = ends()
+    outlet.send(Chunk(np.ones(100, np.complex64), 0))
+    outlet.send(Chunk(np.ones(50, np.complex64), 130))
+    first, second = inlet.receive(), inlet.receive()
+    assert (first.dropped, first.discontinuity) == (0, False)
+    assert (second.first_index, second.dropped, second.discontinuity) == (130, 30, True)
+    assert outlet.stats().missing_rows == 30 == inlet.stats().missing and outlet.stats().discontinuities == 1
+
+
+def test_rows_lost_after_the_last_message_travel_in_the_end_of_stream(ends):
+    """end(final_index) counts rows that never came after the last chunk; the inlet returns them as an empty gap."""
+    outlet, inlet = ends()
+    outlet.send(Chunk(np.ones(100, np.complex64), 0))
+    outlet.end(final_index=160)
+    inlet.receive()
+    tail = inlet.receive()
+    assert tail.count == 0 and tail.dropped == 60 and tail.first_index == 160 and inlet.ended
+    assert outlet.stats().missing_rows == 60 and outlet.stats().next_index == 160
+
+
+def test_a_dropping_link_counts_every_row_it_drops(ends):
+    """With when_full = drop and nobody reading, messages beyond the queues are dropped whole and counted;
+    sent + dropped is everything offered, and the messages that get through carry every gap."""
+    n = 1 << 16                          # 512 KiB messages: more than the kernel's socket buffers hold
+    outlet, inlet = ends(queue=1, when_full=WhenFull.DROP)
+    for k in range(40):
+        outlet.send(Chunk(np.ones(n, np.complex64), n * k))
+    sent = outlet.stats()
+    assert sent.dropped_rows > 0 and sent.rows + sent.dropped_rows == 40 * n
+    assert sent.dropped_messages * n == sent.dropped_rows
+    delivered = carried = 0
+    while inlet.sock.poll(500):
+        chunk = inlet.receive()
+        delivered += chunk.count
+        carried += chunk.dropped
+    assert delivered == sent.rows
+    outlet.send(Chunk(np.ones(n, np.complex64), 40 * n))     # goes through: the reader has emptied the queue
+    last = inlet.receive()
+    assert last.first_index == 40 * n and last.discontinuity == (last.dropped > 0)
+    # every dropped row reaches the reader as missing, in the header of the next message that got through
+    assert carried + last.dropped == outlet.stats().dropped_rows == inlet.stats().missing
+
+
+def test_columns_are_picked_from_a_channels_stream(ends):
+    """A link with columns sends only the selected channels, in the order selected."""
+    wide = StreamInfo("channels", "cf32", 1e4, 0.0, channels=(0, 1, 2, 3), channel_frequencies=(0.0, 1.0, 2.0, 3.0))
+    outlet, inlet = ends(columns=(3, 1), stream=wide)
+    frames = np.arange(20, dtype=np.complex64).reshape(5, 4)
+    outlet.send(Chunk(frames, 0))
+    assert np.array_equal(inlet.receive().data, frames[:, [3, 1]])
+
+
+def test_link_ends_close_with_the_block_and_name_themselves(tmp_path):
+    """An outlet used as a context manager is closed at the end of the block; its repr names the link."""
+    context = zmq.Context()
+    spec = LinkSpec(link=3, label="src.samples -> sink.samples", endpoint=f"ipc://{tmp_path}/x", stream=STREAM,
+                    bind=True)
+    with Inlet(context, spec, "samples") as inlet:
+        assert repr(inlet) == f"<Inlet link 3 'src.samples -> sink.samples' at ipc://{tmp_path}/x>"
+    assert inlet.sock.closed
+    context.term()
