@@ -10,6 +10,8 @@ from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .dsp.mixing import shift_frequency
 from .units import format_frequency
 
+__all__ = ["AMDemod", "FMDemod", "Resample", "Shift", "rational_ratio"]
+
 
 class Shift(Block):
     type_name = "shift"

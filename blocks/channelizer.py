@@ -11,6 +11,8 @@ from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .dsp.design import BankDesign
 from .dsp.mixing import shift_frequency
 
+__all__ = ["Channelizer", "Synthesis"]
+
 
 class Channelizer(Block):
     type_name = "channelizer"

@@ -7,16 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from .block import (
-    Block,
-    BlockContext,
-    BlockError,
-    Chunk,
-    Output,
-    Param,
-    Port,
-    StreamInfo,
-)
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
 
 __all__ = ["Compare"]
 from .dsp.verification import estimate_delay

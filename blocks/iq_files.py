@@ -11,17 +11,7 @@ import re
 from pathlib import Path
 from typing import IO, Any
 
-from .block import (
-    Block,
-    BlockContext,
-    BlockError,
-    Chunk,
-    Output,
-    Pacer,
-    Param,
-    Port,
-    StreamInfo,
-)
+from .block import Block, BlockContext, BlockError, Chunk, Output, Pacer, Param, Port, StreamInfo
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
@@ -200,11 +190,11 @@ class IQReader(Block):
 
 class IQWriter(Block):
     type_name = "iq-writer"
-    summary = "Write one stream of IQ samples to a raw file (cf32 or ci16)."
+    summary = "Write one stream of IQ samples to a raw file (cf32, cf64, ci16, ci8 or cu8)."
     parameters = (
         Param("path", "output-path", "the file, relative to the output folder; may use {channel}, "
               "{frequency} (Hz) and {frequency_mhz} placeholders"),
-        Param("format", "choice", "sample format written", default="cf32", choices=("cf32", "ci16")),
+        Param("format", "choice", "sample format written", default="cf32", choices=COMPLEX_FORMATS),
         Param("metadata", "bool", "also write SigMF metadata beside the file (NAME.sigmf-meta): rate, "
               "centre frequency, datatype, start time, and the flow and block that made it", default=True),
     )
@@ -248,7 +238,8 @@ class IQWriter(Block):
             if self.params["metadata"]:
                 s = self.stream
                 what = f"channel {s.channels[0]} " if s.channels else ""
-                write_sigmf(self.path, datatype=self.params["format"] + "_le", sample_rate=s.sample_rate,
+                datatype = self.format.name + ("_le" if self.format.bytes_per_sample > 2 else "")
+                write_sigmf(self.path, datatype=datatype, sample_rate=s.sample_rate,
                             frequency=s.centre_frequency, start_time=s.start_time, gaps=self.gaps,
                             description=f"{what}written by bandloom block '{self.context.name}' of flow "
                                         f"{self.context.flow_path}")

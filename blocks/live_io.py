@@ -17,16 +17,7 @@ import threading
 import time
 from typing import Any
 
-from .block import (
-    Block,
-    BlockContext,
-    BlockError,
-    Chunk,
-    Output,
-    Param,
-    Port,
-    StreamInfo,
-)
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["StdinReader", "StdoutWriter", "UDPReader"]
@@ -177,8 +168,9 @@ class StdoutWriter(Block):
     uses_stdout = True
     type_name = "stdout-writer"
     summary = "Write one stream's raw samples to standard output, to pipe a channel into another program."
-    parameters = (Param("format", "choice", "cf32 or ci16 for IQ; f32 or s16 for audio", default="native",
-                        choices=("native", "cf32", "ci16", "f32", "s16")),)
+    parameters = (Param("format", "choice", "an IQ format (cf32, ci16, ...) for IQ, f32 or s16 for audio; "
+                        "'native' writes the stream's own cf32 or f32", default="native",
+                        choices=("native",) + tuple(FORMATS)),)
     inputs = (Port("samples", "samples", "IQ or audio", sample_types=("cf32", "f32")),)
 
     def __init__(self, params: dict[str, Any], context: BlockContext) -> None:

@@ -9,20 +9,12 @@ from typing import IO, Any
 
 import numpy as np
 
-from .block import (
-    Block,
-    BlockContext,
-    BlockError,
-    Chunk,
-    Output,
-    Param,
-    Port,
-    StreamInfo,
-)
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
 
 __all__ = ["Activity", "Waterfall"]
 from .dsp.activity import ActivityDetector, Event
 from .dsp.errors import ParameterError
+from .text_tables import render_rows
 from .units import format_frequency
 
 DETECTOR_PARAMS = (
@@ -116,17 +108,13 @@ class Activity(Block):
         if self.detector is None:
             return []
         summary = self.detector.summary()
-        lines = [f"{self.events} events in {self.path}; noise floor {self.detector.floor_db:.1f} dBFS "
-                 f"per channel",
-                 f"{'channel':>7}  {'frequency':>14}  {'duty':>6}  {'peak dBFS':>9}  {'mean dBFS':>9}  {'on level':>8}"]
-        quiet = 0
-        for c, s in enumerate(summary):
-            if s["duty_cycle"] == 0:
-                quiet += 1
-                continue
-            lines.append(f"{self.channels[c]:>7}  {format_frequency(self.frequencies[c]):>14}  "
-                         f"{100 * s['duty_cycle']:>5.1f}%  {s['peak_db']:>9.1f}  {s['mean_db']:>9.1f}  "
-                         f"{s['on_level_db']:>8.1f}")
+        rows = [[self.channels[c], format_frequency(self.frequencies[c]), f"{100 * s['duty_cycle']:.1f}%",
+                 round(s["peak_db"], 1), round(s["mean_db"], 1), round(s["on_level_db"], 1)]
+                for c, s in enumerate(summary) if s["duty_cycle"] > 0]
+        quiet = len(summary) - len(rows)
+        lines = [f"{self.events} events in {self.path}; noise floor {self.detector.floor_db:.1f} dBFS per channel"]
+        if rows:
+            lines += render_rows(["channel", "frequency", "duty", "peak dBFS", "mean dBFS", "on level"], rows).splitlines()
         if quiet:
             lines.append(f"{quiet} channel{'s' if quiet != 1 else ''} never active")
         return lines

@@ -36,6 +36,8 @@ import numpy as np
 from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo, toml_repr
 from .units import UnitError, format_frequency, parse_quantity
 
+__all__ = ["KINDS", "RAMP_SECONDS", "Scenario", "keying", "parse_transmitters", "voice_like"]
+
 KINDS = ("cw", "am", "fm", "fsk", "noise")
 RAMP_SECONDS = 0.005
 _FIELDS = {

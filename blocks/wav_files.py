@@ -8,16 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from .block import (
-    Block,
-    BlockContext,
-    BlockError,
-    Chunk,
-    Output,
-    Param,
-    Port,
-    StreamInfo,
-)
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .sample_formats import FORMATS
 from .units import format_frequency
 

@@ -21,9 +21,11 @@ from typing import Any, TextIO
 import numpy as np
 import scipy.fft
 from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
+from bandloom.blocks.text_tables import render_rows
 
 from ._memory import reuse_chunk_buffers
-from ._table import render_rows
+
+__all__ = ["add_arguments", "measure_case", "run"]
 
 
 def _int_list(text: str) -> list[int]:

@@ -10,8 +10,9 @@ from typing import Any, TextIO
 import numpy as np
 from bandloom.blocks.dsp import design_bank
 from bandloom.blocks.dsp.design import SHAPES, BankDesign
+from bandloom.blocks.text_tables import render_pairs
 
-from ._table import render_pairs
+__all__ = ["add_arguments", "add_design_arguments", "describe", "design_from_args", "run"]
 
 
 def add_design_arguments(parser: ArgumentParser, *, required: bool = True) -> None:

@@ -10,9 +10,9 @@ from pathlib import Path
 from typing import TextIO
 
 from bandloom.blocks.block import REQUIRED, Param, toml_repr
+from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
-from ._table import render_rows
 from .flow import Flow, FlowErrors, load_flow
 from .plugins import Registry, load_registry
 from .run_report import print_summary

@@ -9,6 +9,8 @@ import numpy as np
 from bandloom.blocks.dsp.design import BankDesign
 from bandloom.blocks.dsp.verification import SignalResult, ToneMeasurement
 
+__all__ = ["design_picture", "round_trip_picture"]
+
 
 def _pyplot() -> Any:
     try:

@@ -11,7 +11,8 @@ import signal
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any, TextIO
 
-from ._table import render_rows
+from bandloom.blocks.text_tables import render_rows
+
 from .control import InletStats, OutletStats
 from .flow import Flow, Link
 

@@ -24,16 +24,7 @@ from typing import Any, TextIO
 
 import zmq
 
-from .control import (
-    TERMINAL_STATES,
-    BlockState,
-    Control,
-    ControlWord,
-    ProcessEnd,
-    StatsMessage,
-    WorkerEvent,
-    next_state,
-)
+from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent, next_state
 from .flow import Flow, Instance, Link
 from .run_report import StatusDisplay, describe_exit, summarise
 from .worker_spec import LinkSpec, WorkerSpec

@@ -26,11 +26,16 @@ from bandloom.blocks.dsp.verification import (
     probe_signal,
     round_trip_in_process,
 )
+from bandloom.blocks.text_tables import render_rows
 
-from ._table import render_rows
 from .design_command import add_design_arguments, design_from_args
 from .flow import FlowErrors, check_flow, load_flow
 from .plugins import load_registry
+
+__all__ = [
+    "add_quality_arguments", "add_roundtrip_arguments", "measurement_flow", "round_trip_through_processes",
+    "run_quality", "run_roundtrip"
+]
 
 
 def _common(parser: ArgumentParser) -> None:

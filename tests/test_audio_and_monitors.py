@@ -3,7 +3,6 @@
 import numpy as np
 import pytest
 import scipy.signal
-
 from bandloom.blocks.dsp.activity import ActivityDetector
 from bandloom.blocks.dsp.demod import AMDemodulator, FMDemodulator
 from bandloom.blocks.dsp.resample import Resampler

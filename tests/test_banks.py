@@ -2,10 +2,10 @@
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
-
 from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, channel_offsets
 from conftest import analysis_oracle, complex_noise, relative_error, synthesis_oracle
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 # (M, D, L): powers of two and not, every kind of divisor, L shorter than M,
 # not a multiple of M, and long.

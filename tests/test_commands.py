@@ -4,7 +4,6 @@ import json
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.dsp import design_bank
 from bandloom.runtime.cli import main
 from runner import bandloom

@@ -1,9 +1,19 @@
 """The runtime's own messages and the block life cycle: control words, statistics, the transition table."""
 
 import pytest
-
-from bandloom.runtime.control import (TERMINAL_STATES, TRANSITIONS, BlockState, Control, ControlWord, InletStats,
-                                      OutletStats, ProcessEnd, StatsMessage, WorkerEvent, next_state)
+from bandloom.runtime.control import (
+    TERMINAL_STATES,
+    TRANSITIONS,
+    BlockState,
+    Control,
+    ControlWord,
+    InletStats,
+    OutletStats,
+    ProcessEnd,
+    StatsMessage,
+    WorkerEvent,
+    next_state,
+)
 
 LIVE = (BlockState.STARTING, BlockState.RUNNING, BlockState.ENDING)
 

@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.dsp import design_bank, response_figures
 from conftest import complex_noise
 

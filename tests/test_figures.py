@@ -3,7 +3,6 @@
 import numpy as np
 import pytest
 import scipy.signal
-
 from bandloom.blocks.dsp import cost_ratio, response_figures
 
 # Harris, "On the use of windows for harmonic analysis with the discrete Fourier

@@ -3,7 +3,6 @@
 from pathlib import Path
 
 import pytest
-
 from bandloom.runtime.cli import main
 from runner import bandloom
 

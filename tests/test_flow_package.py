@@ -6,7 +6,6 @@ import sys
 
 import numpy as np
 import pytest
-
 from bandloom.runtime.control import BlockState, OutletStats, StatsMessage, WorkerEvent
 from bandloom.runtime.flow import FlowErrors, WhenFull, check_flow, format_key_path
 from bandloom.runtime.flow.graph import FlowCycle, producer_order

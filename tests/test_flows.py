@@ -7,11 +7,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.block import BlockContext
 from bandloom.blocks.dsp import design_bank
 from bandloom.blocks.scenario import Scenario
-from bandloom.runtime.flow import load_flow
 from bandloom.runtime.plugins import load_registry
 from runner import bandloom, run_flow
 

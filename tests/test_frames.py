@@ -3,9 +3,7 @@
 import numpy as np
 import pytest
 import scipy.signal
-
-from bandloom.blocks.dsp import (AnalysisBank, SynthesisBank, dual_window, frame_bounds,
-                                 round_trip_transfer, tight_window)
+from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, dual_window, frame_bounds, round_trip_transfer, tight_window
 from conftest import complex_noise
 
 

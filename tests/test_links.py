@@ -3,7 +3,6 @@
 import numpy as np
 import pytest
 import zmq
-
 from bandloom.blocks.block import Chunk, StreamInfo
 from bandloom.runtime.flow.model import WhenFull
 from bandloom.runtime.links import Inlet, Outlet

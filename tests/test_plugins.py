@@ -6,7 +6,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.block import Block, Param, Port
 from bandloom.runtime.plugins import PluginError, load_registry, validate_block_class
 from runner import bandloom, run_flow

@@ -6,14 +6,12 @@ import subprocess
 import sys
 import textwrap
 import time
-
 from pathlib import Path
 
 import msgpack
 import numpy as np
 import pytest
 import zmq
-
 from bandloom.blocks.dsp import design_bank
 from conftest import complex_noise
 from runner import bandloom, run_flow
@@ -46,7 +44,7 @@ def write_flow(tmp_path, body):
     return path
 
 
-SOURCE = f"""
+SOURCE = """
 [blocks.source]
 type = "iq-reader"
 path = "band.cf32"
@@ -363,7 +361,6 @@ def test_encrypted_endpoint_needs_the_client_key(tmp_path, recording):
 
 def test_dropping_link_counts_and_flags_every_lost_sample(tmp_path):
     """A when_full = "drop" link into a slow consumer drops whole messages; every one is counted and flagged."""
-    import json
     flow = write_flow(tmp_path, """
         [blocks.band]
         type = "scenario"

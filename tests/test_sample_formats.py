@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.sample_formats import FORMATS
 
 # (component dtype, value of a stored component v): cf32/cf64 as is; ci16 v / 32768 and ci8 v / 128 (signed

@@ -11,11 +11,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.io.wavfile
-
 from bandloom.blocks.block import BlockContext
 from bandloom.runtime.plugins import load_registry
 from conftest import complex_noise
-from runner import run_flow
 
 REGISTRY = load_registry()
 
@@ -205,3 +203,27 @@ def test_udp_reader_skips_headers_and_keeps_order(tmp_path, rng):
     _, stderr = runner.communicate(timeout=60)
     assert runner.returncode == 0, stderr.decode()
     assert np.array_equal(np.fromfile(tmp_path / "udp.cf32", np.complex64), x)
+
+
+@pytest.mark.parametrize("fmt,datatype", [("ci16", "ci16_le"), ("ci8", "ci8"), ("cu8", "cu8"), ("cf64", "cf64_le")])
+def test_writer_formats_read_back_through_their_metadata(tmp_path, rng, fmt, datatype):
+    """Every IQ format the writer takes is named in SigMF terms (no byte order for 8-bit types, per the
+    SigMF schema's datatype pattern) and reads back through iq-reader from that metadata alone."""
+    import jsonschema
+    from bandloom.blocks.block import Chunk, StreamInfo
+    writer = make_block("iq-writer", dict(path="rec.sigmf-data", format=fmt), tmp_path)
+    stream = StreamInfo("samples", "cf32", 25e3, 156.8e6)
+    writer.start({"samples": stream})
+    x = 0.5 * complex_noise(rng, 500)
+    x = (np.clip(x.real, -0.99, 0.99) + 1j * np.clip(x.imag, -0.99, 0.99)).astype(np.complex64)
+    writer.consume("samples", Chunk(x, 0))
+    writer.close()
+    meta = json.loads((tmp_path / "rec.sigmf-meta").read_text())
+    jsonschema.validate(meta, _sigmf_schema())
+    assert meta["global"]["core:datatype"] == datatype
+    reader = make_block("iq-reader", dict(path="rec.sigmf-data"), tmp_path)
+    reader.start({})
+    got = reader.produce()["samples"][0].data
+    step = {"ci16": 1 / 32768, "ci8": 1 / 128, "cu8": 1 / 127.5, "cf64": 0.0}[fmt]
+    assert len(got) == 500 and np.max(np.abs(got.view(np.float32) - x.view(np.float32))) <= step / 2 + 1e-6
+    reader.close()

@@ -1,7 +1,6 @@
 """Units as flow files write them, and declared parameters: the kinds table, conversion and refusals."""
 
 import pytest
-
 from bandloom.blocks.params import KINDS, Param
 from bandloom.blocks.units import UnitError, format_frequency, parse_quantity
 from bandloom.runtime.plugins import validate_block_class

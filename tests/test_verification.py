@@ -4,9 +4,8 @@ import json
 
 import numpy as np
 import pytest
-
 from bandloom.blocks.dsp import design_bank
-from bandloom.blocks.dsp.verification import measure_channel_response, round_trip_in_process, probe_signal
+from bandloom.blocks.dsp.verification import measure_channel_response, probe_signal, round_trip_in_process
 from bandloom.runtime.cli import main
 from runner import bandloom
 

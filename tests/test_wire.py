@@ -4,7 +4,6 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-
 from bandloom.blocks.block import StreamInfo
 from bandloom.runtime import wire
 from bandloom.runtime.links import Inlet
@@ -80,8 +79,8 @@ def test_inlet_names_the_link_and_refuses_wrong_shape(tmp_path):
         ctx.term()
 
 
-from hypothesis import given, settings, strategies as st
-
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 FIELDS = ["version", "stream", "seq", "first_index", "count", "width", "sample_type", "sample_rate",
           "centre_frequency", "flags", "dropped", "channels", "channel_frequencies"]

@@ -23,6 +23,8 @@ import numpy as np
 
 from .errors import ParameterError
 
+__all__ = ["ActivityDetector", "Event"]
+
 
 @dataclass
 class Event:

@@ -46,6 +46,8 @@ import scipy.fft
 
 from .errors import ParameterError
 
+__all__ = ["AnalysisBank", "SynthesisBank", "channel_offsets"]
+
 _KERNEL_MODULES = {"fast": "._polyphase_fast", "reference": "._polyphase_reference"}
 _KERNEL_DTYPES = {"fast": np.complex64, "reference": np.complex128}
 

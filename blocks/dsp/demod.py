@@ -25,6 +25,8 @@ import scipy.signal
 
 from .errors import ParameterError
 
+__all__ = ["AMDemodulator", "FMDemodulator"]
+
 
 def _check_demod_numbers(**values: float) -> None:
     for name, value in values.items():

@@ -47,6 +47,12 @@ from .errors import ParameterError
 from .figures import ResponseFigures, response_figures
 from .frames import RoundTrip, frame_bounds, round_trip_transfer, tight_window
 
+__all__ = [
+    "BankDesign", "DEFAULT_CRITICAL_STOPBAND_DB", "DEFAULT_CRITICAL_TAPS_PER_BRANCH", "DEFAULT_ROLLOFF",
+    "DEFAULT_STOPBAND_DB", "DEFAULT_TAPS_PER_BRANCH", "DEFAULT_TIGHT_MARGIN", "SHAPES", "design_bank",
+    "root_raised_cosine"
+]
+
 SHAPES = ("root-raised-cosine", "low-pass", "rectangle")
 
 DEFAULT_TAPS_PER_BRANCH = 16
@@ -84,7 +90,8 @@ def _window(window: str, length: int, stopband_db: float) -> np.ndarray:
     try:
         return scipy.signal.get_window(window, length, fftbins=False)
     except ValueError as error:
-        raise ParameterError(f"Parameter window={window!r} is not a window scipy.signal.get_window knows: {error}", param="window") from error
+        raise ParameterError(f"Parameter window={window!r} is not a window scipy.signal.get_window knows: {error}",
+                             param="window") from error
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,8 @@ import numpy as np
 
 from .errors import ParameterError
 
+__all__ = ["ResponseFigures", "cost_ratio", "frequency_response", "response_at", "response_figures"]
+
 
 def _fft_size(length: int, channels: int, points_per_channel: int) -> int:
     size = max(points_per_channel * channels, 4 * length)

@@ -32,6 +32,11 @@ import numpy as np
 
 from .errors import ParameterError
 
+__all__ = [
+    "RoundTrip", "dual_window", "frame_bounds", "frame_function", "round_trip_transfer", "tight_window",
+    "zak_transform"
+]
+
 
 def _default_grid(branches: int) -> int:
     return max(64, 8 * (1 << int(np.ceil(np.log2(max(branches, 1))))))

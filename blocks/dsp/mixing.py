@@ -2,6 +2,8 @@
 
 import numpy as np
 
+__all__ = ["shift_frequency"]
+
 
 def shift_frequency(data: np.ndarray, first_index: int, cycles_per_sample: float) -> np.ndarray:
     """``data * exp(2j pi f m)`` with ``m`` the absolute index of each sample and ``f`` in cycles per sample.

@@ -22,6 +22,8 @@ from numpy.lib.stride_tricks import sliding_window_view
 
 from .errors import ParameterError
 
+__all__ = ["Resampler", "resample_poly_taps"]
+
 
 def resample_poly_taps(up: int, down: int, window: object = ("kaiser", 5.0)) -> tuple[np.ndarray, int, int, int]:
     """The filter resample_poly uses, with its front padding; returns (taps, drop, up, down)."""

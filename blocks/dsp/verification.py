@@ -28,6 +28,11 @@ from .banks import AnalysisBank
 from .design import BankDesign
 from .errors import ParameterError
 
+__all__ = [
+    "SIGNALS", "SignalResult", "TONE_OFFSET", "ToneMeasurement", "analyse_round_trip", "comb_frequencies",
+    "estimate_delay", "measure_channel_response", "probe_signal", "round_trip_in_process"
+]
+
 SIGNALS = ("noise", "comb", "chirp", "tone")
 TONE_OFFSET = 3.3          # channel spacings: the single tone's frequency times M
 

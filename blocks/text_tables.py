@@ -1,4 +1,4 @@
-"""Plain-text tables for command output (stdout)."""
+"""Plain-text tables: one renderer for every table bandloom prints (commands, run summary, block reports)."""
 
 from __future__ import annotations
 
