@@ -8,6 +8,7 @@ __all__ = ["format_value", "render_pairs", "render_rows"]
 
 
 def format_value(value: object) -> str:
+    """A cell: yes/no for booleans, "-" for None and NaN, floats to about four significant digits."""
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
@@ -15,6 +16,8 @@ def format_value(value: object) -> str:
             return "-"
         if value in (float("inf"), float("-inf")):
             return "inf" if value > 0 else "-inf"
+        if value == 0:
+            return "0"                                      # never "-0"
         if abs(value) >= 1e5 or (0 < abs(value) < 1e-3):
             return f"{value:.4g}"
         return f"{value:.4f}".rstrip("0").rstrip(".") if abs(value) < 10 else f"{value:.2f}"
@@ -23,13 +26,37 @@ def format_value(value: object) -> str:
     return str(value)
 
 
+def _is_number(value: object) -> bool:
+    """A number, or a number already formatted by the caller ("+0.003", "-127.80", "53.3%")."""
+    if isinstance(value, bool):
+        return False
+    if isinstance(value, (int, float)):
+        return True
+    if isinstance(value, str) and value:
+        try:
+            float(value.rstrip("%"))
+            return True
+        except ValueError:
+            return False
+    return False
+
+
 def render_rows(headers: Sequence[object], rows: Sequence[Sequence[object]]) -> str:
-    """Columns left-aligned for text, right-aligned for numbers; two spaces apart."""
+    """Columns left-aligned for text, right-aligned for numbers; two spaces apart.
+
+    A caller that wants a fixed number of decimals passes the value formatted as text; a column whose
+    every cell is a number (or such text) is right-aligned.
+
+    >>> print(render_rows(["link", "samples", "gain dB"], [["a -> b", 1200, "+0.000"], ["c -> d", 7, "-0.125"]]))
+    link    samples  gain dB
+    ------  -------  -------
+    a -> b     1200   +0.000
+    c -> d        7   -0.125
+    """
     cells = [[format_value(v) for v in row] for row in rows]
     widths = [max(len(str(h)), *(len(r[i]) for r in cells)) if cells else len(str(h))
               for i, h in enumerate(headers)]
-    numeric = [all(isinstance(row[i], (int, float)) and not isinstance(row[i], bool) for row in rows)
-               for i in range(len(headers))]
+    numeric = [bool(rows) and all(_is_number(row[i]) for row in rows) for i in range(len(headers))]
 
     def line(values: Sequence[str]) -> str:
         return "  ".join(v.rjust(w) if n else v.ljust(w)

@@ -198,9 +198,9 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
                 other.append(f"spurs {sig['spurs_away_from_tones_db']:.1f} dB")
             if sig["alias_image_level_db"] is not None:
                 other.append(f"aliases/images {sig['alias_image_level_db']:.1f} dB")
-            rows.append([sig["signal"], round(sig["error_db"], 1), sig["delay_samples"], round(sig["gain_db"], 6),
-                         round(sig["phase_degrees"], 5), sig["worst_channel"],
-                         round(sig["worst_channel_error_db"], 1), ", ".join(other)])
+            rows.append([sig["signal"], f"{sig['error_db']:.1f}", sig["delay_samples"], f"{sig['gain_db']:+.6f}",
+                         f"{sig['phase_degrees']:+.5f}", sig["worst_channel"], f"{sig['worst_channel_error_db']:.1f}",
+                         ", ".join(other)])
         out.write(render_rows(["signal", "error dB", "delay", "gain dB", "phase deg", "worst channel", "its error",
                                "other"], rows) + "\n")
         worst_signal = max(report["signals"], key=lambda s: s["worst_channel_error_db"])
@@ -246,7 +246,7 @@ def run_quality(args: Namespace, out: TextIO, log: TextIO | None = None) -> int:
         return 0
     out.write(f"channel quality of {label}, measured with {args.steps} tones per channel spacing through the "
               f"complex64 bank, against the figures computed from the taps\n\n")
-    table = [[r["what"], round(r["measured"], 3), round(r["from_taps"], 3), f"{r['difference']:+.3f}"] for r in rows]
+    table = [[r["what"], f"{r['measured']:.3f}", f"{r['from_taps']:.3f}", f"{r['difference']:+.3f}"] for r in rows]
     out.write(render_rows(["figure", "measured", "from taps", "difference"], table) + "\n")
     return 0
 

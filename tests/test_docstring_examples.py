@@ -8,7 +8,7 @@ import pytest
 MODULES = [
     "bandloom.blocks.block", "bandloom.blocks.params", "bandloom.blocks.sample_formats",
     "bandloom.blocks.dsp.banks", "bandloom.blocks.dsp.design", "bandloom.blocks.dsp.errors",
-    "bandloom.runtime.control", "bandloom.runtime.worker_spec", "bandloom.runtime.flow.problems",
+    "bandloom.blocks.text_tables", "bandloom.runtime.control", "bandloom.runtime.worker_spec", "bandloom.runtime.flow.problems",
     "bandloom.runtime.flow.locator", "bandloom.runtime.flow.selection", "bandloom.runtime.flow.graph",
 ]
 
