@@ -39,7 +39,7 @@ import numpy as np
 from .params import REQUIRED, Param, toml_repr
 from .sample_formats import STREAM_TYPES
 
-__all__ = ["Block", "BlockContext", "BlockError", "Chunk", "Output", "Param", "Pacer", "Port", "REQUIRED",
+__all__ = ["Block", "BlockContext", "BlockError", "Chunk", "Loss", "Output", "Param", "Pacer", "Port", "REQUIRED",
            "SAMPLE_TYPES", "StreamInfo", "toml_repr"]
 
 SAMPLE_TYPES = STREAM_TYPES
@@ -156,6 +156,16 @@ class Chunk:
         return np.concatenate([zeros, self.data])
 
 
+@dataclass(frozen=True)
+class Loss:
+    """Samples a block lost itself (not lost upstream of it), why, and whether the flow chose to allow it
+    (a live source told to drop rather than wait). The run's verdict lists every one."""
+
+    samples: int
+    reason: str
+    accepted: bool = False
+
+
 #: What ``produce``, ``consume`` and ``finish`` return: chunks by output port.
 Output = Mapping[str, "list[Chunk] | Chunk"]
 
@@ -270,6 +280,10 @@ class Block:
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         """Open files and build state; ``inputs`` as for :meth:`output_streams`."""
 
+    def begin(self) -> None:
+        """Sources: every consumer is ready; start taking input now (a live source starts reading here).
+        Called once, after :meth:`start`, before the first :meth:`produce`."""
+
     def produce(self) -> Output | None:
         """Sources: the next ``{port: [Chunk, ...]}``, or None at the end of the stream."""
         return None
@@ -287,6 +301,11 @@ class Block:
 
     def report(self) -> list[str]:
         """Lines for the run summary (for example a measured error); default none."""
+        return []
+
+    def losses(self) -> list[Loss]:
+        """Samples this block lost itself, with the reason; default none. Gaps that arrived from upstream
+        are counted where they happened and are not repeated here."""
         return []
 
     def progress(self) -> tuple[int, int] | None:

@@ -96,6 +96,8 @@ class IQReader(Block):
         self.file: IO[bytes] | None = None
         self.index = 0               # absolute index of the next sample sent
         self.count = 0
+        self.truncated = ""          # why the file ended early, once it has
+        self.pacer: Pacer | None = None
 
     def _settings(self) -> tuple[str, str, float, float, str | None]:
         """Format, byte order, rate, centre and start time: the flow's values, else the metadata's."""
@@ -155,10 +157,16 @@ class IQReader(Block):
         self.file.seek(self.first * self.sample_bytes)
         self.position = 0            # samples delivered from the selection, this pass
         self.passes_left = self.params["repeat"]
-        self.pacer = Pacer(rate) if self.params["pace"] else None
+        self.path = path
+        self.rate = rate
+
+    def begin(self) -> None:
+        self.pacer = Pacer(self.rate) if self.params["pace"] else None
 
     def produce(self) -> Output | None:
         assert self.file is not None
+        if self.truncated:
+            raise BlockError(self.truncated)
         if self.stopping:
             return None
         if self.position >= self.count:
@@ -168,9 +176,22 @@ class IQReader(Block):
             self.file.seek(self.first * self.sample_bytes)
             self.position = 0
         n = min(self.params["chunk_size"], self.count - self.position)
+        offset = self.file.tell()
         raw = self.file.read(n * self.sample_bytes)
+        if len(raw) < n * self.sample_bytes:
+            # the file is shorter than when the run started: deliver the whole samples, then fail
+            end = offset + len(raw)
+            partial = len(raw) % self.sample_bytes
+            self.truncated = (f"{self.path} ended at byte {end} while {offset + n * self.sample_bytes} were "
+                              f"expected (the file shrank while being read)"
+                              + (f"; a partial sample of {partial} bytes at byte {end - partial} was not used"
+                                 if partial else "")
+                              + f"; the {self.index + len(raw) // self.sample_bytes} whole samples before it "
+                              f"were delivered")
         n = len(raw) // self.sample_bytes
         if n == 0:
+            if self.truncated:
+                raise BlockError(self.truncated)
             return None
         data = self.format.decode(raw[:n * self.sample_bytes], "big" if self.byte_order == "big" else "little")
         chunk = Chunk(data, self.index)

@@ -33,7 +33,7 @@ from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo, toml_repr
+from .block import Block, BlockError, Chunk, Output, Pacer, Param, Port, StreamInfo, toml_repr
 from .units import UnitError, format_frequency, parse_quantity
 
 __all__ = ["KINDS", "RAMP_SECONDS", "Scenario", "keying", "parse_transmitters", "voice_like"]
@@ -203,8 +203,8 @@ class Scenario(Block):
                                       self.params["centre_frequency"])}
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
-        import time
         rate = self.params["sample_rate"]
+        self.pacer: Pacer | None = None
         seeds = np.random.SeedSequence(self.params["seed"]).spawn(len(self.params["transmitters"]) + 1)
         self.noise_rng = np.random.default_rng(seeds[0])
         txs = parse_transmitters(self.params["transmitters"], rate, self.params["centre_frequency"])
@@ -212,7 +212,9 @@ class Scenario(Block):
         self.total = int(round(self.params["duration"] * rate))
         self.index = 0
         self.noise_amplitude = np.sqrt(10 ** (self.params["noise"] / 10) / 2)
-        self.clock = time.monotonic()
+
+    def begin(self) -> None:
+        self.pacer = Pacer(self.params["sample_rate"]) if self.params["pace"] else None
 
     def progress(self) -> tuple[int, int]:
         return self.index, self.total
@@ -227,9 +229,6 @@ class Scenario(Block):
             x += tx.chunk(self.index, n)
         chunk = Chunk(x.astype(np.complex64), self.index)
         self.index += n
-        if self.params["pace"]:
-            import time
-            delay = self.clock + self.index / self.params["sample_rate"] - time.monotonic()
-            if delay > 0:
-                time.sleep(delay)
+        if self.pacer:
+            self.pacer.wait_until(self.index)
         return {"samples": [chunk]}

@@ -2,7 +2,9 @@
 to supervisor), and the life cycle of a block as the supervisor sees it.
 
 Control goes over one PUB socket that every worker subscribes to; each
-message is one word, or ``release NAME`` for one block. Statistics go back
+message is one word, or ``release NAME`` for one block. PUB drops what a
+subscriber is not yet connected for, so the supervisor repeats ``go``,
+``stop`` and ``abort`` on every turn of its loop until they have taken effect. Statistics go back
 over PUSH/PULL as a msgpack map (:class:`StatsMessage`), twice a second and
 at every change of state. Both sockets live in the run's private folder.
 
@@ -19,6 +21,7 @@ from enum import Enum
 from typing import Any
 
 import msgpack
+from bandloom.blocks.block import Loss
 
 __all__ = ["BlockState", "Control", "ControlWord", "InletStats", "OutletStats", "ProcessEnd", "StatsMessage",
            "TERMINAL_STATES", "TRANSITIONS", "WorkerEvent", "next_state"]
@@ -27,6 +30,7 @@ __all__ = ["BlockState", "Control", "ControlWord", "InletStats", "OutletStats", 
 class ControlWord(str, Enum):
     """What the supervisor tells workers."""
 
+    GO = "go"              # every process has opened its links: sources may start
     STOP = "stop"          # sources end their streams; the rest drains
     ABORT = "abort"        # close everything now
     RELEASE = "release"    # every consumer of the named block has finished: it may close its links
@@ -164,6 +168,7 @@ class StatsMessage:
     outputs: dict[int, OutletStats] = field(default_factory=dict)
     progress: tuple[int, int] | None = None
     report: list[str] = field(default_factory=list)
+    losses: list[Loss] = field(default_factory=list)     # what the block itself lost, so far
     message: str = ""
 
     def encode(self) -> bytes:
@@ -178,6 +183,7 @@ class StatsMessage:
         values["event"] = WorkerEvent(values["event"])
         values["inputs"] = {int(k): InletStats(**v) for k, v in values.get("inputs", {}).items()}
         values["outputs"] = {int(k): OutletStats(**v) for k, v in values.get("outputs", {}).items()}
+        values["losses"] = [Loss(**v) for v in values.get("losses", [])]
         if values.get("progress") is not None:
             values["progress"] = tuple(values["progress"])
         return cls(**values)

@@ -18,7 +18,15 @@ from .plugins import Registry, load_registry
 from .run_report import print_summary
 from .supervisor import RunOutcome, Supervisor
 
-__all__ = ["Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys", "run_run"]
+__all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys",
+           "run_run"]
+
+
+#: Exit statuses of ``bandloom run`` (docs/reliability.md). An interrupted run ends the way Python does on
+#: Ctrl-C (killed by SIGINT, shell status 130); a flow with problems exits 1 from ``check`` and ``run`` alike.
+EXIT_OK = 0             # finished; nothing lost, or only loss the flow or the command line accepted
+EXIT_FAILED = 1         # a block failed or died, or the flow has problems
+EXIT_LOST = 3           # finished, but samples were lost and nothing accepted that
 
 
 class Interrupted(Exception):
@@ -70,7 +78,9 @@ def run_check(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) 
 def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("flow", help="the flow file (TOML)")
     parser.add_argument("--out", help="folder for output files (default: current folder)")
-    parser.add_argument("--quiet", action="store_true", help="no status display and no notes on stderr")
+    parser.add_argument("--quiet", action="store_true", help="print only errors and the verdict line")
+    parser.add_argument("--accept-loss", action="store_true", help="exit 0 even if samples were lost (the verdict "
+                        "still counts them); the flow file can say so with accept_loss = true under [flow]")
     parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
 
 
@@ -82,13 +92,15 @@ def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) ->
     output_dir = Path(args.out) if args.out else Path.cwd()
     supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log)
     outcome = supervisor.run()
-    summary = supervisor.summary()
-    print_summary(summary, supervisor.failures(), log)
+    summary = supervisor.summary(accept_loss=args.accept_loss)
+    print_summary(summary, supervisor.failures(), log, quiet=args.quiet)
     if args.report:
         Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
     if outcome is RunOutcome.INTERRUPTED:
         raise Interrupted()
-    return 0 if outcome is RunOutcome.FINISHED else 1
+    if outcome is RunOutcome.FAILED:
+        return EXIT_FAILED
+    return EXIT_LOST if summary["lost_samples_not_accepted"] else EXIT_OK
 
 
 def add_blocks_arguments(parser: argparse.ArgumentParser) -> None:

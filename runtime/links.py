@@ -8,8 +8,13 @@
   discontinuity flag and the number of rows missing before it.
 * Messages are sent without copying (``copy=False``): the arrays handed to
   :meth:`Outlet.send` are never modified afterwards.
-* Received messages are decoded with :mod:`.wire` (size limits, whitelists);
-  an incoming message is capped with ``MAXMSGSIZE``.
+* A message carries at most :data:`MESSAGE_BYTES` of samples: a larger chunk is
+  split across messages by rows, so every socket's ``MAXMSGSIZE`` (the
+  same cap, plus the header's limit) is one the link can always honour and
+  nothing is ever refused by the transport uncounted.
+* Received messages are decoded with :mod:`.wire` (size limits, whitelists).
+* A socket whose bind or connect fails is closed at once and the failure
+  names the link (a socket left open would keep its process from exiting).
 """
 
 from __future__ import annotations
@@ -30,14 +35,41 @@ from .control import InletStats, OutletStats
 from .flow.model import WhenFull
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "Inlet", "MAX_MESSAGE_BYTES", "Outlet", "configure", "secure_server"]
+__all__ = ["Aborted", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet", "configure", "secure_server"]
 
-MAX_MESSAGE_BYTES = 1 << 30
+MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
 POLL_MS = 200
 
 
 class Aborted(Exception):
     """The run is being aborted; the worker stops at once."""
+
+
+class LinkError(OSError):
+    """A link's socket could not be opened; the message names the link, its endpoint and the reason."""
+
+
+def open_socket(context: zmq.Context, kind: int, spec: LinkSpec, *, bind: bool,
+                prepare: Callable[[zmq.Socket], Any] | None = None) -> tuple[zmq.Socket, Any]:
+    """A configured socket bound or connected to the link's endpoint; closed again, and a LinkError
+    naming the link raised, when that fails. ``prepare`` runs before bind (CURVE keys)."""
+    sock = context.socket(kind)
+    extra = None
+    try:
+        configure(sock, spec.queue)
+        extra = prepare(sock) if prepare else None
+        if bind:
+            sock.bind(spec.endpoint)
+        else:
+            sock.connect(spec.endpoint)
+    except (zmq.ZMQError, OSError, ValueError) as error:
+        sock.close(linger=0)
+        if extra is not None:
+            extra.stop()
+        reason = zmq.strerror(error.errno or 0) if isinstance(error, zmq.ZMQError) else str(error)
+        raise LinkError(f"link {spec.label}: cannot {'bind' if bind else 'connect to'} {spec.endpoint}: "
+                        f"{reason}") from None
+    return sock, extra
 
 
 def configure(sock: zmq.Socket, queue: int) -> None:
@@ -48,7 +80,7 @@ def configure(sock: zmq.Socket, queue: int) -> None:
     sock.setsockopt(zmq.LINGER, -1)
     sock.setsockopt(zmq.SNDHWM, queue)
     sock.setsockopt(zmq.RCVHWM, queue)
-    sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
+    sock.setsockopt(zmq.MAXMSGSIZE, MESSAGE_BYTES + wire.HEADER_LIMIT)
 
 
 def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) -> Any:
@@ -95,15 +127,11 @@ class Outlet(_LinkEnd):
         self.stream = spec.stream
         self.when_full = spec.when_full
         self.should_abort = should_abort
-        self.sock = context.socket(zmq.PUSH)
-        configure(self.sock, spec.queue)
-        self.authenticator = None
-        if spec.bind:
-            if spec.keys:
-                self.authenticator = secure_server(self.sock, spec.keys, context)
-            self.sock.bind(spec.endpoint)
-        else:
-            self.sock.connect(spec.endpoint)
+        keys = spec.keys if spec.bind else None
+        self.sock, self.authenticator = open_socket(
+            context, zmq.PUSH, spec, bind=spec.bind,
+            prepare=(lambda sock: secure_server(sock, keys, context)) if keys else None)
+        self.rows_per_message = max(1, MESSAGE_BYTES // (self.stream.width * self.stream.dtype.itemsize))
         self.next_index = 0          # index after the last row sent
         self.offered_index = 0       # index after the last row offered, sent or dropped
         self.seq = 0
@@ -137,10 +165,18 @@ class Outlet(_LinkEnd):
         return True
 
     def send(self, chunk: Chunk) -> None:
+        """Send a chunk (the link's columns of it), in as many messages as the byte cap needs."""
         data = chunk.data
         if self.columns is not None:
             data = data[:, self.columns[0]] if len(self.columns) == 1 else data[:, self.columns]
         data = np.ascontiguousarray(data, dtype=self.stream.dtype)
+        step = self.rows_per_message
+        for start in range(0, len(data), step):
+            first = chunk.first_index + start
+            self._send_rows(data[start:start + step], first, chunk.discontinuity and start == 0)
+
+    def _send_rows(self, data: np.ndarray, first_index: int, discontinuity: bool) -> None:
+        chunk = Chunk(data, first_index, discontinuity)
         count = len(data)
         if count == 0:
             return
@@ -196,9 +232,7 @@ class Inlet(_LinkEnd):
         self.id = spec.link
         self.port = port
         self.stream = spec.stream
-        self.sock = context.socket(zmq.PULL)
-        configure(self.sock, spec.queue)
-        self.sock.bind(spec.endpoint)
+        self.sock, _ = open_socket(context, zmq.PULL, spec, bind=True)
         self.rows = 0
         self.messages = 0
         self.gaps = 0

@@ -1,8 +1,18 @@
-"""What a run did, for people and programs: the live status table, the summary, the --report JSON.
+"""What a run did, for people and programs: the live status table, the summary, the verdict, the --report JSON.
 
 Counts come from the workers' last statistics (:class:`~.control.StatsMessage`):
 for each link what its sender delivered, dropped and counted as missing, and
-what its receiver read; for each block its state, exit and report lines.
+what its receiver read; for each block its state, exit, report lines and the
+samples it lost itself. For every internal link
+
+    sent = received + in flight          (dropped samples were never sent)
+
+so a run that stops early shows what was still in flight as lost, not as
+nothing. The verdict adds up every place samples were lost: links that
+dropped (``when_full = "drop"``), blocks that lost samples themselves (a live
+source, a datagram the kernel dropped), and samples in flight when a run was
+aborted. Missing samples further down a flow are the same samples again and
+are not counted twice.
 """
 
 from __future__ import annotations
@@ -14,12 +24,12 @@ from typing import TYPE_CHECKING, Any, TextIO
 from bandloom.blocks.text_tables import render_rows
 
 from .control import InletStats, OutletStats
-from .flow import Flow, Link
+from .flow import Flow, Link, WhenFull
 
 if TYPE_CHECKING:
     from .supervisor import BlockRecord
 
-__all__ = ["StatusDisplay", "describe_exit", "link_counts", "print_summary", "summarise"]
+__all__ = ["StatusDisplay", "describe_exit", "link_counts", "print_summary", "summarise", "verdict"]
 
 
 def describe_exit(code: int | None) -> str:
@@ -48,40 +58,78 @@ def link_counts(flow: Flow, blocks: Mapping[str, BlockRecord]) -> list[tuple[Lin
     return rows
 
 
-def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, seconds: float) -> dict[str, Any]:
-    """The end-of-run report as plain values (what --report writes as JSON)."""
+def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, seconds: float,
+              accept_loss: bool = False) -> dict[str, Any]:
+    """The end-of-run report as plain values (what --report writes as JSON), verdict included."""
     links = []
+    losses: list[dict[str, Any]] = []
     for link, sent, received in link_counts(flow, blocks):
+        in_flight = max(0, sent.rows - received.rows) if received is not None else None
         links.append({
             "link": link.label, "where": link.declared_at,
             "sent_samples": sent.rows, "sent_messages": sent.messages,
             "received_samples": received.rows if received else None,
             "received_messages": received.messages if received else None,
+            "in_flight_samples": in_flight,
             "dropped_samples": sent.dropped_rows, "dropped_messages": sent.dropped_messages,
             "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
             "last_index": sent.next_index,
         })
+        if sent.dropped_rows:
+            declared = link.options.when_full is WhenFull.DROP
+            losses.append({"samples": sent.dropped_rows, "where": f"link {link.label}",
+                           "why": "dropped while the link was full" + (' (when_full = "drop")' if declared else ""),
+                           "accepted": declared})
+        if in_flight:
+            losses.append({"samples": in_flight, "where": f"link {link.label}",
+                           "why": f"still in flight when the run {outcome}", "accepted": False})
+    for name, record in blocks.items():
+        for loss in (record.last.losses if record.last else []):
+            losses.append({"samples": loss.samples, "where": f"block {name}", "why": loss.reason,
+                           "accepted": loss.accepted})
     report = {name: {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
                      "reason": r.exit_reason, "report": list(r.report),
                      "samples_in": r.last.rows_in if r.last else 0, "samples_out": r.last.rows_out if r.last else 0}
               for name, r in blocks.items()}
+    lost = sum(x["samples"] for x in losses)
+    unaccepted = sum(x["samples"] for x in losses if not x["accepted"])
     return {"flow": str(flow.path), "name": flow.name, "outcome": outcome, "seconds": round(seconds, 3),
-            "blocks": report, "links": links}
+            "blocks": report, "links": links, "losses": losses, "lost_samples": lost,
+            "lost_samples_not_accepted": 0 if accept_loss else unaccepted, "loss_accepted_by_flow": accept_loss}
 
 
-def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO) -> None:
-    """The summary on stderr: outcome, failures, the link table, each block's report lines."""
-    print(f"bandloom: flow {summary['name']!r} {summary['outcome']} in {summary['seconds']:.2f} s", file=log)
+def verdict(summary: Mapping[str, Any]) -> str:
+    """One line: that no sample was lost, or how many were lost, where and why."""
+    if not summary["lost_samples"]:
+        return "verdict: no sample lost"
+    parts = [f"{x['samples']} {x['where']}: {x['why']}{' (allowed by the flow)' if x['accepted'] else ''}"
+             for x in summary["losses"]]
+    tail = ""
+    if not summary["lost_samples_not_accepted"]:
+        tail = " — accepted (accept_loss)" if summary["loss_accepted_by_flow"] else " — all of it allowed by the flow"
+    return f"verdict: {summary['lost_samples']} samples lost: {'; '.join(parts)}{tail}"
+
+
+def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, *, quiet: bool = False) -> None:
+    """The summary on stderr: outcome, failures, the link table, each block's report lines, and last the
+    verdict. ``quiet`` leaves only the failures and the verdict."""
+    if not quiet:
+        print(f"bandloom: flow {summary['name']!r} {summary['outcome']} in {summary['seconds']:.2f} s", file=log)
     for line in failures:
         print(f"bandloom: {line}", file=log)
-    rows = [[x["link"], x["sent_samples"], x["sent_messages"], x["dropped_samples"], x["missing_samples"],
-             x["discontinuities"]] for x in summary["links"]]
-    table = render_rows(["link", "samples", "messages", "dropped", "missing", "gaps"], rows)
-    print("\n".join("  " + line for line in table.splitlines()), file=log)
-    print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged)", file=log)
-    for name, block in summary["blocks"].items():
-        for line in block["report"]:
-            print(f"  {name}: {line}", file=log)
+    if not quiet:
+        show_flight = summary["outcome"] != "finished" or any(x["in_flight_samples"] for x in summary["links"])
+        headers = ["link", "samples", "messages", "dropped", "missing", "gaps"] + (["in flight"] if show_flight else [])
+        rows = [[x["link"], x["sent_samples"], x["sent_messages"], x["dropped_samples"], x["missing_samples"],
+                 x["discontinuities"]] + (["-" if x["in_flight_samples"] is None else x["in_flight_samples"]]
+                                          if show_flight else []) for x in summary["links"]]
+        print("\n".join("  " + line for line in render_rows(headers, rows).splitlines()), file=log)
+        print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged"
+              + ("; in flight: sent, not yet received when the run stopped" if show_flight else "") + ")", file=log)
+        for name, block in summary["blocks"].items():
+            for line in block["report"]:
+                print(f"  {name}: {line}", file=log)
+    print(f"bandloom: {verdict(summary)}", file=log)
 
 
 class StatusDisplay:

@@ -103,6 +103,7 @@ class Supervisor:
         self.interrupted = False
         self.failed: list[str] = []
         self.elapsed = 0.0
+        self.barrier_passed = False
 
     def worker_specs(self, folder: str) -> list[tuple[Instance, WorkerSpec]]:
         specs = []
@@ -193,6 +194,10 @@ class Supervisor:
             if stopping_since is not None and aborting_since is None and now - stopping_since > DRAIN_SECONDS:
                 self.say(f"still draining after {DRAIN_SECONDS:g} s; aborting")
                 aborting_since = now
+            if not self.barrier_passed and all(r.state is not BlockState.STARTING for r in self.blocks.values()):
+                self.barrier_passed = True          # every worker has said hello: its links are open
+            if self.barrier_passed and not self.failed:
+                control.send(Control(ControlWord.GO).encode())
             for name in self.releasable():
                 control.send(Control(ControlWord.RELEASE, name).encode())
             if aborting_since is not None:
@@ -244,9 +249,10 @@ class Supervisor:
             return RunOutcome.FAILED
         return RunOutcome.INTERRUPTED if self.interrupted else RunOutcome.FINISHED
 
-    def summary(self) -> dict[str, Any]:
+    def summary(self, *, accept_loss: bool = False) -> dict[str, Any]:
         """The end-of-run report as plain values (also what --report writes as JSON)."""
-        return summarise(self.flow, self.blocks, outcome=self.outcome().value, seconds=self.elapsed)
+        return summarise(self.flow, self.blocks, outcome=self.outcome().value, seconds=self.elapsed,
+                         accept_loss=accept_loss or self.flow.accept_loss)
 
     def failures(self) -> list[str]:
         """One line per block that failed or died, with its exit and reason."""

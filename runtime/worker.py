@@ -59,6 +59,7 @@ class Worker:
         self.stats_socket = self.context.socket(zmq.PUSH)
         self.stats_socket.setsockopt(zmq.LINGER, 5000)
         self.stats_socket.connect(spec.stats)
+        self.go = False
         self.stop = False
         self.abort = False
         self.released = False
@@ -87,6 +88,8 @@ class Worker:
                 self.abort = True
             elif message.word is ControlWord.RELEASE and message.block == self.name:
                 self.released = True
+            elif message.word is ControlWord.GO:
+                self.go = True
             elif message.word is ControlWord.STOP:
                 if not self.stop and self.block is not None and self.block.is_source:
                     self.block.stop_requested()
@@ -102,7 +105,8 @@ class Worker:
             inputs={i.id: i.stats() for i in self.inlets},
             outputs={o.id: o.stats() for outs in self.outlets.values() for o in outs},
             progress=(int(progress[0]), int(progress[1])) if progress else None,
-            report=report or [], message=message)
+            report=report or [], losses=list(self.block.losses()) if self.block is not None else [],
+            message=message)
         self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 
@@ -138,7 +142,15 @@ class Worker:
                 for outlet in self.outlets.get(port, []):
                     outlet.send(chunk)
 
+    def wait_for_go(self) -> None:
+        """The start barrier: a source produces nothing until every process of the flow has opened its
+        links, so no sample is sent (or read from a pipe) before its consumers can take it."""
+        while not self.go and not self.stop and not self.poll_control():
+            self.control.poll(50)
+
     def run_source(self, block: Block) -> None:
+        self.wait_for_go()
+        block.begin()
         while not self.poll_control():
             produced = block.produce()
             if produced is None:

@@ -94,6 +94,7 @@ def scenario_band(transmitters, seconds=0.5):
     block = Scenario(params, BlockContext("band", Path("x.toml"), Path(".")))
     block.output_streams({})
     block.start({})
+    block.begin()
     parts = []
     while (p := block.produce()) is not None:
         parts.append(p["samples"][0].data)
@@ -158,4 +159,4 @@ def test_channel_to_stdout_pipes_only_data(runs):
     assert len(audio) == 48000
     spectrum = np.abs(np.fft.rfft(audio[4800:].astype(float)))
     assert np.fft.rfftfreq(len(audio) - 4800, 1 / 48000)[np.argmax(spectrum)] == pytest.approx(1000, abs=2)
-    assert "finished" in done.stderr
+    assert done.stderr == "bandloom: verdict: no sample lost\n"      # --quiet: only the verdict, on stderr

@@ -29,6 +29,7 @@ def make_block(type_name, params, tmp_path, name="b"):
 def drain(block, inputs=None):
     block.output_streams(inputs or {})
     block.start(inputs or {})
+    block.begin()
     parts = []
     while (produced := block.produce()) is not None:
         for chunk in produced.get("samples", []):
@@ -150,7 +151,8 @@ def test_stdin_source_faster_than_the_flow_counts_every_drop(tmp_path, rng):
     total = 6_000_000
     block = (rng.standard_normal(2 * 100_000).astype(np.float32) * 0.1).tobytes()
     flow = tmp_path / "live.toml"
-    flow.write_text('[blocks.live]\ntype = "stdin-reader"\nsample_rate = "8 MHz"\nqueue = 2\nbuffer_size = 20000\n'
+    flow.write_text('[blocks.live]\ntype = "stdin-reader"\nsample_rate = "8 MHz"\nwhen_full = "drop"\n'
+                    'buffer = "5 ms"\nbuffer_size = 20000\n'
                     '[blocks.split]\ntype = "channelizer"\nchannels = 1024\n'
                     '[blocks.sink]\ntype = "discard"\nrate_limit = "2 kHz"\n'
                     '[[links]]\nfrom = "live.samples"\nto = "split.samples"\nqueue = 2\n'
@@ -188,7 +190,7 @@ def test_udp_reader_skips_headers_and_keeps_order(tmp_path, rng):
     flow = tmp_path / "udp.toml"
     # a deep queue: this test is about headers and order, not about dropping (tested above)
     flow.write_text(f'[blocks.radio]\ntype = "udp-reader"\nsample_rate = "48 kHz"\nport = {port}\nheader_bytes = 4\n'
-                    'queue = 10000\n'
+                    'buffer = "60 s"\n'
                     'idle_timeout = "1.5 s"\n[blocks.keep]\ntype = "iq-writer"\npath = "udp.cf32"\n'
                     '[[links]]\nfrom = "radio.samples"\nto = "keep.samples"\n')
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
@@ -223,6 +225,7 @@ def test_writer_formats_read_back_through_their_metadata(tmp_path, rng, fmt, dat
     assert meta["global"]["core:datatype"] == datatype
     reader = make_block("iq-reader", dict(path="rec.sigmf-data"), tmp_path)
     reader.start({})
+    reader.begin()
     got = reader.produce()["samples"][0].data
     step = {"ci16": 1 / 32768, "ci8": 1 / 128, "cu8": 1 / 127.5, "cf64": 0.0}[fmt]
     assert len(got) == 500 and np.max(np.abs(got.view(np.float32) - x.view(np.float32))) <= step / 2 + 1e-6

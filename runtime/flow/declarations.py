@@ -22,11 +22,18 @@ from ..plugins import Registry
 from .model import LinkOptions, WhenFull
 from .problems import KeyPath, ProblemLog, did_you_mean, known_names
 
-__all__ = ["Declaration", "FLOW_KEYS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS", "PLACEHOLDERS",
+__all__ = ["Declaration", "FLOW_KEYS", "FLOW_OPTIONS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS", "PLACEHOLDERS",
            "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
 
 TOP_LEVEL_KEYS = ("flow", "blocks", "links")
-FLOW_KEYS = ("name", "description")
+#: The keys of the [flow] table, declared like block parameters.
+FLOW_OPTIONS: tuple[Param, ...] = (
+    Param("name", "str", "the flow's name in summaries", default=None),
+    Param("description", "str", "what the flow is for", default=""),
+    Param("accept_loss", "bool", "a run that loses samples still exits 0 (the verdict still counts them)",
+          default=False),
+)
+FLOW_KEYS = tuple(p.name for p in FLOW_OPTIONS)
 PER_CHANNEL_KEYS = ("from", "select", "input", "tolerance")
 NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_-]*$")
 PLACEHOLDERS = ("channel", "frequency", "frequency_mhz")
@@ -314,7 +321,7 @@ class Tables:
     """What :func:`read_tables` read: the flow's own keys, its declarations and links, and which
     block inputs some link names (valid or not, so an input is not also called unconnected)."""
 
-    meta: dict[str, str]
+    meta: dict[str, Any]
     declarations: dict[str, Declaration]
     links: list[RawLink]
     claimed: set[tuple[str, str | None]]
@@ -331,11 +338,14 @@ def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_
     if not isinstance(meta, dict):
         log.add(("flow",), "expected a table with name and description")
         meta = {}
-    for key, value in meta.items():
+    for key in meta:
         if key not in FLOW_KEYS:
             log.add(("flow", key), f"unknown key; expected one of {known_names(FLOW_KEYS)}{did_you_mean(key, FLOW_KEYS)}")
-        elif not isinstance(value, str):
-            log.add(("flow", key), f"expected text, got {toml_repr(value)}")
+    options = {}
+    for param in FLOW_OPTIONS:
+        good, value = convert_option(log, ("flow",), param, meta)
+        if good:
+            options[param.name] = value
     blocks = data.get("blocks")
     if not isinstance(blocks, dict) or not blocks:
         log.add(("blocks",), "a flow needs at least one block: add a [blocks.NAME] table with a type")
@@ -354,5 +364,5 @@ def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_
         link = reader.link(i, table, decls, set(blocks))
         if link:
             links.append(link)
-    return Tables(meta={k: v for k, v in meta.items() if isinstance(v, str)}, declarations=decls, links=links,
+    return Tables(meta=options, declarations=decls, links=links,
                   claimed=reader.claimed)

@@ -45,7 +45,8 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
                     f"{what}; a run has one, so only one block may")
     if log.problems:
         raise FlowErrors(log.problems)
-    return Flow(path=path, name=tables.meta.get("name", path.stem), description=tables.meta.get("description", ""),
+    return Flow(path=path, name=tables.meta.get("name") or path.stem, description=tables.meta.get("description", ""),
+                accept_loss=bool(tables.meta.get("accept_loss")),
                 instances=instances, links=expanded)
 
 

@@ -104,3 +104,4 @@ class Flow:
     description: str
     instances: dict[str, Instance]
     links: list[Link]
+    accept_loss: bool = False        # [flow] accept_loss: lost samples do not change the exit status
