@@ -194,9 +194,10 @@ class Supervisor:
             if stopping_since is not None and aborting_since is None and now - stopping_since > DRAIN_SECONDS:
                 self.say(f"still draining after {DRAIN_SECONDS:g} s; aborting")
                 aborting_since = now
-            if not self.barrier_passed and all(r.state is not BlockState.STARTING for r in self.blocks.values()):
+            said_hello = (BlockState.RUNNING, BlockState.ENDING, BlockState.DONE)
+            if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()):
                 self.barrier_passed = True          # every worker has said hello: its links are open
-            if self.barrier_passed and not self.failed:
+            if self.barrier_passed and aborting_since is None and not self.failed:
                 control.send(Control(ControlWord.GO).encode())
             for name in self.releasable():
                 control.send(Control(ControlWord.RELEASE, name).encode())

@@ -113,3 +113,20 @@ def test_link_ends_close_with_the_block_and_name_themselves(tmp_path):
         assert repr(inlet) == f"<Inlet link 3 'src.samples -> sink.samples' at ipc://{tmp_path}/x>"
     assert inlet.sock.closed
     context.term()
+
+
+def test_a_chunk_larger_than_the_message_cap_is_split_by_rows(ends):
+    """A 20 MiB chunk travels as several messages of at most MESSAGE_BYTES each, every row once, in order."""
+    from bandloom.runtime.links import MESSAGE_BYTES
+    outlet, inlet = ends()
+    n = (20 << 20) // 8
+    data = np.arange(n, dtype=np.float32).astype(np.complex64)
+    outlet.send(Chunk(data, 0))
+    outlet.end()
+    parts = []
+    while (chunk := inlet.receive()) is not None:
+        assert chunk.data.nbytes <= MESSAGE_BYTES
+        parts.append(chunk)
+    assert len(parts) == -(-data.nbytes // MESSAGE_BYTES) and parts[1].first_index == len(parts[0].data)
+    assert np.array_equal(np.concatenate([p.data for p in parts]), data)
+    assert outlet.stats().rows == inlet.stats().rows == n and inlet.stats().missing == 0
