@@ -13,6 +13,7 @@ Python, so every numeric converter refuses booleans explicitly.
 from __future__ import annotations
 
 import difflib
+import math
 from collections.abc import Callable
 from dataclasses import KW_ONLY, dataclass
 from typing import Any
@@ -181,6 +182,8 @@ class Param:
         given = value
         value = KINDS[self.kind].convert(self, value)
         number = isinstance(value, (int, float)) and not isinstance(value, bool)
+        if number and not math.isfinite(value):
+            raise _expected(self, "a finite number", given)
         if number and self.minimum is not None and value < self.minimum:
             raise _expected(self, f"at least {self.minimum:g}", given)
         if number and self.maximum is not None and value > self.maximum:

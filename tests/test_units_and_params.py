@@ -86,3 +86,12 @@ def test_a_plugin_with_an_unknown_parameter_kind_is_refused_at_registration():
 
     with pytest.raises(PluginError, match="parameter 'colour' has unknown kind 'colour'"):
         validate_block_class("odd", Odd)
+
+
+@pytest.mark.parametrize("value", [float("nan"), float("inf"), float("-inf")])
+def test_non_finite_numbers_are_refused(value):
+    """nan and inf (which TOML allows) are refused before any block sees them, bounds or not."""
+    for param in (Param("buffer", "quantity", "doc", unit="s", minimum=1e-3, maximum=3600.0),
+                  Param("gain", "float", "doc")):
+        with pytest.raises(ValueError, match="expected a finite number"):
+            param.convert(value)
