@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 from fractions import Fraction
+from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .dsp.mixing import shift_frequency
 from .units import format_frequency
 
@@ -61,24 +62,52 @@ class Resample(Block):
         return {"samples": StreamInfo("samples", s.sample_type, self.params["rate"], s.centre_frequency,
                                       start_time=s.start_time)}
 
+    def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
+        super().__init__(params, context)
+        self.index = 0                # output index of the next sample
+        self.gaps = 0
+        self.missing_in = 0           # input samples missing, in all gaps
+        self.skipped_out = 0          # output samples left as a gap
+        self.edge_out = 0             # output samples computed with part of their input missing (taken as zero)
+
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         from .dsp.resample import Resampler
         s = inputs["samples"]
         self.dtype = s.dtype
         up, down = rational_ratio(self.params["rate"], s.sample_rate)
         self.resampler = Resampler(up, down)
-        self.index = 0
 
-    def _chunk(self, values: np.ndarray) -> Output:
+    def _chunk(self, values: np.ndarray) -> list[Chunk]:
         chunk = Chunk(values.astype(self.dtype), self.index)
         self.index += len(values)
-        return {"samples": [chunk]} if len(values) else {}
+        return [chunk] if len(values) else []
 
     def consume(self, port: str, chunk: Chunk) -> Output:
-        return self._chunk(self.resampler.process(chunk.data))
+        out = []
+        if chunk.dropped:
+            # A gap of N input samples becomes a gap of about N * up / down output samples; the few
+            # outputs whose filter reaches across the gap's start are computed with the gap as zeros.
+            edge, skipped = self.resampler.skip(chunk.dropped)
+            out += self._chunk(edge)
+            self.index += skipped
+            self.gaps += 1
+            self.missing_in += chunk.dropped
+            self.skipped_out += skipped
+            self.edge_out += len(edge)
+        out += self._chunk(self.resampler.process(chunk.data))
+        return {"samples": out}
 
     def finish(self) -> Output:
-        return self._chunk(self.resampler.finish())
+        return {"samples": self._chunk(self.resampler.finish())}
+
+    def end_index(self, port: str) -> int:
+        return self.index
+
+    def report(self) -> list[str]:
+        if not self.gaps:
+            return []
+        return [f"{self.missing_in} input samples missing in {self.gaps} gaps: {self.skipped_out} output samples "
+                f"left as gaps, {self.edge_out} computed with the missing input taken as zero"]
 
 
 class FMDemod(Block):
@@ -106,6 +135,8 @@ class FMDemod(Block):
                                    deemphasis=self.params["deemphasis"], squelch=self.params["squelch"])
 
     def consume(self, port: str, chunk: Chunk) -> Output:
+        if chunk.dropped:
+            self.demod.restart()       # no phase step across a gap: it would be a click
         return {"audio": [Chunk(self.demod.process(chunk.data), chunk.first_index)]}
 
 

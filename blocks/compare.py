@@ -49,6 +49,7 @@ class Compare(Block):
         self.buffers: dict[str, list[np.ndarray]] = {"reference": [], "test": []}
         self.base = {"reference": 0, "test": 0}      # absolute index of each buffer's first sample
         self.held = {"reference": 0, "test": 0}
+        self.missing = {"reference": 0, "test": 0}      # zero-filled samples, by input
         self.ended = False
         self.err = self.ref = 0.0
         self.cross = 0j
@@ -68,7 +69,8 @@ class Compare(Block):
         self.held[port] -= n
 
     def consume(self, port: str, chunk: Chunk) -> Output:
-        data = chunk.with_gap_filled().astype(np.complex128)
+        data = chunk.with_gap_filled().astype(np.complex128)     # missing samples count as error
+        self.missing[port] += chunk.dropped
         self.buffers[port].append(data)
         self.held[port] += len(data)
         self._advance()
@@ -109,7 +111,8 @@ class Compare(Block):
 
     def figures(self) -> dict[str, Any]:
         if not self.count or self.ref == 0 or self.delay is None:
-            return {"delay_samples": self.delay, "compared_samples": self.count, "error_db": None, "pass": False}
+            return {"delay_samples": self.delay, "compared_samples": self.count, "error_db": None, "pass": False,
+                    "missing_samples": dict(self.missing)}
         error_db = 10 * np.log10(max(self.err / self.ref, 1e-30))
         gain = abs(self.cross) / self.ref
         residual = max(self.test_power - abs(self.cross) ** 2 / self.ref, 0.0)     # error after best gain/phase
@@ -118,7 +121,8 @@ class Compare(Block):
                 "error_after_gain_and_phase_db": round(float(10 * np.log10(max(residual / self.ref, 1e-30))), 2),
                 "gain_db": round(float(20 * np.log10(max(gain, 1e-30))), 6),
                 "phase_degrees": round(float(np.degrees(np.angle(self.cross))), 6),
-                "threshold_db": self.params["threshold"], "pass": bool(error_db <= self.params["threshold"])}
+                "threshold_db": self.params["threshold"], "pass": bool(error_db <= self.params["threshold"]),
+                "missing_samples": dict(self.missing)}
 
     def close(self) -> None:
         if self.ended and self.params["path"]:
@@ -135,4 +139,5 @@ class Compare(Block):
         verdict = "PASS" if f["pass"] else "FAIL"
         return [f"{verdict}: error {f['error_db']:.1f} dB (threshold {f['threshold_db']:g} dB) over "
                 f"{f['compared_samples']} samples; delay {f['delay_samples']} samples ({f['delay_found_by']}); "
-                f"gain {f['gain_db']:+.4f} dB, phase {f['phase_degrees']:+.4f} degrees"]
+                f"gain {f['gain_db']:+.4f} dB, phase {f['phase_degrees']:+.4f} degrees"] + \
+            [f"{count} samples missing on '{port}', compared as zeros" for port, count in self.missing.items() if count]

@@ -304,6 +304,7 @@ class StdoutWriter(Block):
     def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
         super().__init__(params, context)
         self.written = 0
+        self.zero_filled = 0          # zero samples written where input was missing (a pipe cannot mark a gap)
         self.closed_pipe = False
 
     def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
@@ -331,8 +332,10 @@ class StdoutWriter(Block):
             self.closed_pipe = True
             return {}
         self.written += chunk.count
+        self.zero_filled += chunk.dropped
         return {}
 
     def report(self) -> list[str]:
         note = "; the reading program closed the pipe early" if self.closed_pipe else ""
-        return [f"wrote {self.written} samples to standard output{note}"]
+        gaps = f" and {self.zero_filled} zeros for missing input" if self.zero_filled else ""
+        return [f"wrote {self.written} samples{gaps} to standard output{note}"]

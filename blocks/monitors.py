@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import warnings
 from pathlib import Path
 from typing import IO, Any
 
@@ -28,11 +29,11 @@ DETECTOR_PARAMS = (
 )
 
 
-def _detector(params: dict[str, Any], stream: StreamInfo, keep_levels: bool = False) -> ActivityDetector:
+def _detector(params: dict[str, Any], stream: StreamInfo) -> ActivityDetector:
     try:
         return ActivityDetector(stream.width, stream.sample_rate, interval=params["interval"],
                                 threshold=params["threshold"], hysteresis=params["hysteresis"],
-                                min_duration=params["min_duration"], keep_levels=keep_levels)
+                                min_duration=params["min_duration"])
     except ParameterError as error:
         if error.param == "hysteresis":
             raise BlockError(f"hysteresis = {params['hysteresis']:g} dB must be less than threshold = "
@@ -92,6 +93,8 @@ class Activity(Block):
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.detector is not None
+        if chunk.dropped:
+            self.detector.skip(chunk.dropped)
         self._write(self.detector.process(chunk.data))
         return {}
 
@@ -117,6 +120,8 @@ class Activity(Block):
             lines += render_rows(["channel", "frequency", "duty", "peak dBFS", "mean dBFS", "on level"], rows).splitlines()
         if quiet:
             lines.append(f"{quiet} channel{'s' if quiet != 1 else ''} never active")
+        if self.detector.gaps:
+            lines.append(f"{self.detector.missing} rows missing in {self.detector.gaps} gaps were not measured")
         return lines
 
 
@@ -145,50 +150,115 @@ class Waterfall(Block):
 
     def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
         super().__init__(params, context)
-        self.rows: list[np.ndarray] = []
+        self.rows: list[np.ndarray] = []        # averaged spectra, oldest first; NaN where input was missing
         self.path: Path | None = None
+        self.missing = 0
+        self.gaps = 0
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.stream = inputs["samples"]
         self.channel_stream = inputs.get("channels")
-        self.detector = _detector(self.params, self.channel_stream, keep_levels=True) \
-            if self.channel_stream else None
+        self.detector = _detector(self.params, self.channel_stream) if self.channel_stream else None
         n = self.params["fft_size"]
         self.window = np.hanning(n).astype(np.float32)
         self.pending = np.zeros(0, np.complex64)
         self.segments_per_row = 1
         self.row_acc = np.zeros(n)
-        self.row_count = 0
+        self.row_count = 0          # spectra summed into row_acc
+        self.row_slots = 0          # segments of time the row has covered, measured or missing
         self.total = 0
+        self.skip_next = 0          # samples to skip so that segments stay aligned to multiples of fft_size
+        # Activity as time bins x channels (True = on), from the detector's on/off events, folded
+        # like the rows so memory stays bounded however long the stream.
+        self.bin_seconds = self.detector.interval if self.detector else 1.0
+        self.bins = np.zeros((0, self.channel_stream.width if self.channel_stream else 0), bool)
+        self.on_since: dict[int, float] = {}
 
     def _fold_rows(self) -> None:
-        # keep memory bounded: merge neighbouring rows and double the averaging
-        merged = [(a + b) / 2 for a, b in zip(self.rows[0::2], self.rows[1::2])]
-        self.rows = merged
+        # keep memory bounded: merge neighbouring rows and double the averaging (a missing row is NaN)
+        even = len(self.rows) // 2 * 2
+        pairs = np.array(self.rows[:even]).reshape(even // 2, 2, -1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)        # both rows of a pair missing: NaN
+            merged = np.nanmean(pairs, axis=1)
+        self.rows = list(merged) + self.rows[even:]
         self.segments_per_row *= 2
+
+    def _add_segment(self, spectrum: np.ndarray | None) -> None:
+        """One segment of time: its spectrum, or None where the input was missing."""
+        if spectrum is not None:
+            self.row_acc += spectrum
+            self.row_count += 1
+        self.row_slots += 1
+        if self.row_slots == self.segments_per_row:
+            n = self.params["fft_size"]
+            self.rows.append(self.row_acc / self.row_count if self.row_count else np.full(n, np.nan))
+            self.row_acc = np.zeros(n)
+            self.row_count = 0
+            self.row_slots = 0
+            if len(self.rows) > self.params["rows"]:
+                self._fold_rows()
+
+    def _mark(self, events: list[Event]) -> None:
+        for event in events:
+            if event.kind == "on":
+                self.on_since[event.column] = event.time
+                continue
+            since = self.on_since.pop(event.column, None)
+            if since is None:
+                continue
+            while True:
+                first, last = int(since / self.bin_seconds), max(int(np.ceil(event.time / self.bin_seconds)), 1)
+                if last <= self.params["rows"]:
+                    break
+                self._fold_bins()
+            if last > len(self.bins):
+                self.bins = np.concatenate([self.bins, np.zeros((last - len(self.bins), self.bins.shape[1]), bool)])
+            self.bins[first:last, event.column] = True
+
+    def _fold_bins(self) -> None:
+        if len(self.bins) % 2:
+            self.bins = np.concatenate([self.bins, np.zeros((1, self.bins.shape[1]), bool)])
+        self.bins = self.bins[0::2] | self.bins[1::2]
+        self.bin_seconds *= 2
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         if port == "channels":
             assert self.detector is not None
-            self.detector.process(chunk.data)
+            if chunk.dropped:
+                self.detector.skip(chunk.dropped)
+            self._mark(self.detector.process(chunk.data))
             return {}
         n = self.params["fft_size"]
-        data = np.concatenate([self.pending, chunk.data]) if len(self.pending) else chunk.data
+        data = chunk.data
+        if chunk.dropped:
+            # segments the gap touches are missing; the next whole segment starts at a multiple of n
+            self.gaps += 1
+            self.missing += chunk.dropped
+            gap_start = chunk.first_index - chunk.dropped
+            resume = -(-chunk.first_index // n) * n
+            for _ in range(gap_start // n, resume // n):
+                self._add_segment(None)
+            self.pending = np.zeros(0, np.complex64)
+            self.skip_next = resume - chunk.first_index
+        if self.skip_next:
+            taken = min(self.skip_next, len(data))
+            data = data[taken:]
+            self.skip_next -= taken
+        data = np.concatenate([self.pending, data]) if len(self.pending) else data
         count = len(data) // n
         if count:
             segments = data[:count * n].reshape(count, n) * self.window
             spectra = np.abs(np.fft.fftshift(np.fft.fft(segments, axis=1), axes=1)) ** 2
             for spectrum in spectra:
-                self.row_acc += spectrum
-                self.row_count += 1
-                if self.row_count == self.segments_per_row:
-                    self.rows.append(self.row_acc / self.row_count)
-                    self.row_acc = np.zeros(n)
-                    self.row_count = 0
-                    if len(self.rows) >= 2 * self.params["rows"]:
-                        self._fold_rows()
+                self._add_segment(spectrum)
         self.pending = data[count * n:].copy()
         self.total += chunk.count
+        return {}
+
+    def finish(self) -> Output:
+        if self.detector is not None:
+            self._mark(self.detector.finish())
         return {}
 
     def close(self) -> None:
@@ -203,13 +273,14 @@ class Waterfall(Block):
         rate, centre = self.stream.sample_rate, self.stream.centre_frequency
         # normalise so a full-scale carrier reads 0 dBFS
         power = np.array(self.rows) / (np.sum(self.window) ** 2)
-        level = 10 * np.log10(np.maximum(power, 1e-20))
+        level = np.ma.masked_invalid(10 * np.log10(np.maximum(power, 1e-20)))      # gaps: masked, drawn blank
         duration = len(self.rows) * self.segments_per_row * n / rate
-        floor = np.percentile(level, 20)
+        floor = float(np.nanpercentile(level.filled(np.nan), 20)) if level.count() else -100.0
         fig, ax = plt.subplots(figsize=(11, 6.5), dpi=100)
         lo, hi = (centre - rate / 2) / 1e6, (centre + rate / 2) / 1e6
+        top = max(float(level.max()) if level.count() else floor, floor + 30)
         image = ax.imshow(level, aspect="auto", origin="upper", extent=(lo, hi, duration, 0),
-                          vmin=floor - 5, vmax=max(level.max(), floor + 30), cmap="viridis", interpolation="nearest")
+                          vmin=floor - 5, vmax=top, cmap="viridis", interpolation="nearest")
         fig.colorbar(image, ax=ax, label="level per FFT bin (dBFS)")
         cs = self.channel_stream
         if cs is not None and self.detector is not None:
@@ -217,10 +288,9 @@ class Waterfall(Block):
             edges = sorted({round(f - spacing / 2, 3) for f in cs.channel_frequencies})
             for edge in edges:
                 ax.axvline(edge / 1e6, color="white", alpha=0.25, linewidth=0.6)
-            states = np.array(self.detector.states) if self.detector.states else np.zeros((0, cs.width), bool)
-            step = self.detector.interval
+            step = self.bin_seconds
             for c, f in enumerate(cs.channel_frequencies):
-                on = list(states[:, c]) if len(states) else []
+                on = list(self.bins[:, c]) if len(self.bins) else []
                 start = None
                 for i, flag in enumerate(on + [False]):
                     if flag and start is None:
@@ -242,4 +312,5 @@ class Waterfall(Block):
         plt.close(fig)
 
     def report(self) -> list[str]:
-        return [f"drew {len(self.rows)} rows to {self.path or '?'}"]
+        gaps = f"; {self.missing} samples missing in {self.gaps} gaps left blank" if self.gaps else ""
+        return [f"drew {len(self.rows)} rows to {self.path or '?'}{gaps}"]

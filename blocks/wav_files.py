@@ -89,6 +89,7 @@ class WavWriter(Block):
         self.path: Path | None = None
         self.frames = 0
         self.clipped = 0
+        self.zero_filled = 0          # frames of silence written where input was missing
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         stream = inputs["audio"]
@@ -102,7 +103,8 @@ class WavWriter(Block):
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.file is not None
-        data = chunk.with_gap_filled() * self.params["gain"]
+        data = chunk.with_gap_filled() * self.params["gain"]       # a gap becomes silence of its length
+        self.zero_filled += chunk.dropped
         self.clipped += int(np.count_nonzero(np.abs(data.view(np.float32) if self.stereo else data) > 1.0))
         self.file.writeframes(self.pcm.encode(data).tobytes())
         self.frames += len(data)
@@ -115,4 +117,5 @@ class WavWriter(Block):
 
     def report(self) -> list[str]:
         clipped = f", {self.clipped} values clipped" if self.clipped else ""
-        return [f"wrote {self.frames} frames to {self.path or '?'}{clipped}"]
+        gaps = f", {self.zero_filled} of them silence for missing input" if self.zero_filled else ""
+        return [f"wrote {self.frames} frames to {self.path or '?'}{gaps}{clipped}"]

@@ -12,6 +12,12 @@ when its level is at least ``threshold`` dB over the floor and *below* when it
 is under ``threshold - hysteresis``; it turns on after ``min_duration`` of
 consecutive *above* intervals (the event is dated at the first of them) and
 off after ``min_duration`` of consecutive *below* intervals.
+
+Times are seconds from the stream's first row (index 0). Missing rows (a gap
+in the stream, :meth:`ActivityDetector.skip`) are not measured: the interval
+they fall in is abandoned, the next one starts after the gap, and time moves
+on by the gap's length; a channel keeps its state across a gap. Memory does
+not grow with the stream's length.
 """
 
 from __future__ import annotations
@@ -41,7 +47,7 @@ def _db(power: np.ndarray) -> np.ndarray:
 class ActivityDetector:
     def __init__(self, columns: int, rate: float, *, interval: float = 0.05, threshold: float = 10.0,
                  hysteresis: float = 4.0, min_duration: float = 0.1,
-                 floor_history: int = 20, keep_levels: bool = False) -> None:
+                 floor_history: int = 20) -> None:
         for name, value in (("interval", interval), ("threshold", threshold)):
             if not value > 0:
                 raise ParameterError(f"Parameter {name}={value!r} is not > 0!", param=name)
@@ -70,9 +76,12 @@ class ActivityDetector:
         self.peak = np.full(self.columns, -np.inf)
         self.power_sum = np.zeros(self.columns)
         self.floor_db = np.nan
-        self.keep_levels = keep_levels
-        self.levels: list[np.ndarray] = []          # per interval: level_db row (when keep_levels)
-        self.states: list[np.ndarray] = []          # per interval: on flags (when keep_levels)
+        self.run_start = np.zeros(self.columns)                   # time the current run of intervals began
+        self.position = 0            # absolute index of the next row
+        self.interval_start = 0      # absolute index of the first row of the interval being measured
+        self.last_end = 0.0          # time at the end of the last measured interval
+        self.gaps = 0
+        self.missing = 0             # rows missing in gaps, not measured
 
     def process(self, rows: np.ndarray) -> list[Event]:
         """Take rows ``(n, C)`` (or ``(n,)`` for one channel); return the events they complete."""
@@ -83,6 +92,8 @@ class ActivityDetector:
         events = []
         start = 0
         while start < len(power):
+            if self.partial_rows == 0:
+                self.interval_start = self.position + start
             take = min(self.rows_per_interval - self.partial_rows, len(power) - start)
             self.partial += power[start:start + take].sum(axis=0)
             self.partial_rows += take
@@ -91,7 +102,16 @@ class ActivityDetector:
                 events.extend(self._interval(self.partial / self.rows_per_interval))
                 self.partial[:] = 0
                 self.partial_rows = 0
+        self.position += len(power)
         return events
+
+    def skip(self, rows: int) -> None:
+        """``rows`` rows are missing here: abandon the interval in progress and move time on."""
+        self.partial[:] = 0
+        self.partial_rows = 0
+        self.position += int(rows)
+        self.gaps += 1
+        self.missing += int(rows)
 
     def _floor(self, level: np.ndarray) -> np.ndarray:
         if self.columns >= 4:
@@ -105,7 +125,8 @@ class ActivityDetector:
         level = _db(power)
         floor = self._floor(level)
         self.floor_db = float(np.median(floor))
-        t0 = self.intervals * self.interval
+        t0 = self.interval_start / self.rate
+        self.last_end = t0 + self.interval
         self.intervals += 1
         self.peak = np.maximum(self.peak, level)
         self.power_sum += power
@@ -121,12 +142,13 @@ class ActivityDetector:
             if below[c] if self.on[c] else above[c]:
                 if self.run[c] == 0:
                     self.run_power[c] = 0.0
+                    self.run_start[c] = t0
                 self.run[c] += 1
                 self.run_power[c] += power[c]
             else:
                 self.run[c] = 0
             if self.run[c] >= self.min_intervals:
-                start = t0 - (self.run[c] - 1) * self.interval
+                start = float(self.run_start[c])
                 if self.on[c]:
                     # the trailing quiet intervals were not part of the transmission
                     self.on_power[c] -= self.run_power[c]
@@ -142,14 +164,11 @@ class ActivityDetector:
                     self.on_intervals[c] += self.run[c]
                 self.on[c] = not self.on[c]
                 self.run[c] = 0
-        if self.keep_levels:
-            self.levels.append(level)
-            self.states.append(self.on.copy())
         return events
 
     def finish(self) -> list[Event]:
-        """Close channels still on at the end with an "off" event dated at the end."""
-        end = self.intervals * self.interval
+        """Close channels still on at the end with an "off" event dated at the end of the last interval."""
+        end = self.last_end
         events = [Event(end, c, float(_db(self.on_power[c] / max(self.on_count[c], 1))), "off")
                   for c in range(self.columns) if self.on[c]]
         self.on[:] = False

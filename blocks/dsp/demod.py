@@ -16,6 +16,12 @@ float32 audio at the same rate.
   level, so a modulation depth m gives an audio amplitude of m. The carrier
   level is the envelope through two cascaded one-pole low-passes at
   ``dc_cutoff`` Hz (ripple at 1 kHz about -80 dB for 10 Hz).
+
+Gaps (missing input): the output keeps the input's indices, so a gap stays a
+gap. ``FMDemodulator.restart()`` starts the discriminator, de-emphasis and
+squelch afresh after one (the phase step across a gap would be a click, and
+the squelch closes until it has measured the channel again); the AM carrier
+tracker keeps its level across a gap, the best estimate there is.
 """
 
 from __future__ import annotations
@@ -54,6 +60,13 @@ class FMDemodulator:
         self.squelch = None if squelch is None else 10 ** (squelch / 10)
         pole = np.exp(-1.0 / (self.rate * squelch_time))
         self.power_filter = (np.array([1 - pole]), np.array([1.0, -pole]))
+        self.power_state = np.zeros(1)
+
+    def restart(self) -> None:
+        """Forget the past: the next sample is demodulated as the stream's first (see module doc)."""
+        self.started = False
+        if self.b is not None:
+            self.state = np.zeros(1)
         self.power_state = np.zeros(1)
 
     def process(self, x: np.ndarray) -> np.ndarray:

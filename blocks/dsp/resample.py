@@ -9,6 +9,12 @@ centred filter). Feeding a signal in any chunking and then calling
 outputs wait for half a filter length of input, and ``finish`` supplies the
 zeros ``resample_poly`` pads the end with.
 
+Missing input (a gap in the stream) is taken as zeros: ``skip(n)`` returns
+the outputs near the gap's start that still see real input, then moves past
+the outputs that would see only zeros without computing them (they are
+exactly zero), so the stream stays equal to ``resample_poly`` of the
+zero-filled input while the gap stays a gap at the output rate.
+
 The same module is the reference implementation: there is no separate fast
 path.
 """
@@ -93,6 +99,27 @@ class Resampler:
         self.history = buffer[len(buffer) - (K - 1):] if K > 1 else buffer[:0]
         self.emitted += len(out)
         return out
+
+    def skip(self, n: int) -> tuple[np.ndarray, int]:
+        """Take ``n`` missing input samples as zeros (see module doc).
+
+        Returns ``(edge, skipped)``: the outputs computed across the gap's
+        start, then the number of outputs after them that see only the gap
+        (all exactly zero, not returned).
+        """
+        K = self.branch_len
+        dtype = self.history.dtype if self.history is not None else np.float64
+        head = min(int(n), K)                 # after K zeros the history holds only zeros
+        edge = self.process(np.zeros(head, dtype))
+        rest = int(n) - head
+        if not rest:
+            return edge, 0
+        before = self.produced
+        self.consumed += rest
+        self.produced = (self.consumed * self.up - 1) // self.down + 1
+        skipped = self.produced - before - max(0, min(self.produced - before, self.drop - before))
+        self.emitted += skipped
+        return edge, skipped
 
     def finish(self) -> np.ndarray:
         """The last outputs, computed with the zero padding resample_poly uses."""
