@@ -36,6 +36,7 @@ from typing import IO, Any, ClassVar
 
 import numpy as np
 
+from .output_files import open_output_file
 from .params import REQUIRED, Param, toml_repr
 from .sample_formats import STREAM_TYPES
 
@@ -330,10 +331,12 @@ class Block:
     # Helpers for block types ----------------------------------------------------
     def open_output(self, text: str, mode: str = "wb", **options: Any) -> tuple[Path, IO[Any]]:
         """Open the output file named by parameter text ``text`` (placeholders filled, relative to
-        the run's output folder), making its folder; return (path, open file)."""
+        the run's output folder), making its folder; return (path, open file). Binary files are
+        unbuffered and write whole or raise; every write error names the file
+        (:mod:`.output_files`)."""
         path = self.context.output_path(text)
         path.parent.mkdir(parents=True, exist_ok=True)
-        return path, open(path, mode, **options)
+        return path, open_output_file(path, mode, **options)
 
     def warn(self, message: str) -> None:
         """One line on the run's stderr, naming this block."""

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .output_files import replace_file
 
 __all__ = ["Compare"]
 from .dsp.verification import estimate_delay
@@ -128,7 +129,7 @@ class Compare(Block):
         if self.ended and self.params["path"]:
             path = self.context.output_path(self.params["path"])
             path.parent.mkdir(parents=True, exist_ok=True)
-            path.write_text(json.dumps(self.figures(), indent=2) + "\n")
+            replace_file(path, json.dumps(self.figures(), indent=2) + "\n")
 
     def report(self) -> list[str]:
         if not self.started:

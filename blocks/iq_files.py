@@ -11,7 +11,8 @@ import re
 from pathlib import Path
 from typing import IO, Any
 
-from .block import Block, BlockContext, BlockError, Chunk, Output, Pacer, Param, Port, StreamInfo
+from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Pacer, Param, Port, StreamInfo
+from .output_files import replace_file, whole_records
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
@@ -58,9 +59,7 @@ def write_sigmf(data_path: Path, *, datatype: str, sample_rate: float, frequency
         "annotations": [{"core:sample_start": int(start), "core:sample_count": int(count),
                          "core:comment": "zero-filled: these samples were lost upstream"} for start, count in gaps],
     }
-    path = sigmf_meta_path(data_path)
-    path.write_text(json.dumps(meta, indent=2) + "\n")
-    return path
+    return replace_file(sigmf_meta_path(data_path), json.dumps(meta, indent=2) + "\n")
 
 
 class IQReader(Block):
@@ -226,8 +225,11 @@ class IQWriter(Block):
         self.file: IO[bytes] | None = None
         self.path: Path | None = None
         self.gaps: list[tuple[int, int]] = []
-        self.written = 0
-        self.zero_filled = 0
+        self.written = 0              # samples of the input written
+        self.zero_filled = 0          # zeros written for samples missing upstream
+        self.received = 0             # samples of the input taken
+        self.not_written = 0          # samples taken but not in the file after a failed write
+        self.failure = ""             # the failed write's reason
 
     def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         path = self.params["path"]
@@ -240,31 +242,52 @@ class IQWriter(Block):
         self.stream = inputs["samples"]
         self.format = FORMATS[self.params["format"]]
         self.path, self.file = self.open_output(self.params["path"])
+        self._write_metadata()          # valid from the start; replaced whole at the end
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.file is not None
+        self.received += chunk.count
         if chunk.dropped:
             # A raw file has no way to mark a gap: keep absolute time with zeros
             # (and say so in the metadata's annotations).
             self.gaps.append((self.written + self.zero_filled, chunk.dropped))
             self.zero_filled += chunk.dropped
-        self.format.encode(chunk.with_gap_filled()).tofile(self.file)
+        try:
+            self.file.write(self.format.encode(chunk.with_gap_filled()))
+        except OSError as error:
+            self.failure = error.strerror or str(error)
+            raise
         self.written += chunk.count
         return {}
 
+    def _write_metadata(self) -> None:
+        if not (self.params["metadata"] and self.path):
+            return
+        s = self.stream
+        what = f"channel {s.channels[0]} " if s.channels else ""
+        datatype = self.format.name + ("_le" if self.format.bytes_per_sample > 2 else "")
+        write_sigmf(self.path, datatype=datatype, sample_rate=s.sample_rate,
+                    frequency=s.centre_frequency, start_time=s.start_time, gaps=self.gaps,
+                    description=f"{what}written by bandloom block '{self.context.name}' of flow "
+                                f"{self.context.flow_path}")
+
     def close(self) -> None:
         if self.file and self.path:
-            self.file.flush()
+            if self.failure:
+                # keep every whole sample written before the failure; count the rest
+                in_file = whole_records(self.file, self.format.bytes_per_sample)
+                self.written = max(0, min(self.received, in_file - self.zero_filled))
+                self.not_written = self.received - self.written
             self.file.close()
-            if self.params["metadata"]:
-                s = self.stream
-                what = f"channel {s.channels[0]} " if s.channels else ""
-                datatype = self.format.name + ("_le" if self.format.bytes_per_sample > 2 else "")
-                write_sigmf(self.path, datatype=datatype, sample_rate=s.sample_rate,
-                            frequency=s.centre_frequency, start_time=s.start_time, gaps=self.gaps,
-                            description=f"{what}written by bandloom block '{self.context.name}' of flow "
-                                        f"{self.context.flow_path}")
+            self.file = None
+            self._write_metadata()
+
+    def losses(self) -> list[Loss]:
+        if not self.not_written:
+            return []
+        return [Loss(self.not_written, f"not written to {self.path}: {self.failure}")]
 
     def report(self) -> list[str]:
         gaps = f", {self.zero_filled} zero-filled for gaps" if self.zero_filled else ""
-        return [f"wrote {self.written} samples to {self.path or '?'}{gaps}"]
+        failed = f"; {self.not_written} samples not written ({self.failure})" if self.not_written else ""
+        return [f"wrote {self.written} samples to {self.path or '?'}{gaps}{failed}"]

@@ -305,10 +305,10 @@ class Waterfall(Block):
         title = self.params["title"] or f"{self.context.name}: {format_frequency(centre)}, " \
                                          f"{format_frequency(rate)} wide"
         ax.set_title(title + ("\nchannel grid in white, detected activity in orange" if cs is not None else ""))
-        self.path = self.context.output_path(self.params["path"])
-        self.path.parent.mkdir(parents=True, exist_ok=True)
         fig.tight_layout()
-        fig.savefig(self.path)
+        self.path, handle = self.open_output(self.params["path"])
+        with handle:
+            fig.savefig(handle, format="png")
         plt.close(fig)
 
     def report(self) -> list[str]:

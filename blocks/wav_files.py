@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import os
 import wave
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from .block import Block, BlockContext, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Param, Port, StreamInfo
 from .sample_formats import FORMATS
 from .units import format_frequency
 
@@ -90,6 +91,9 @@ class WavWriter(Block):
         self.frames = 0
         self.clipped = 0
         self.zero_filled = 0          # frames of silence written where input was missing
+        self.received = 0             # frames of input taken
+        self.not_written = 0          # frames taken but not in the file after a failed write
+        self.failure = ""
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         stream = inputs["audio"]
@@ -100,22 +104,43 @@ class WavWriter(Block):
         self.file.setnchannels(2 if self.stereo else 1)
         self.file.setsampwidth(2)
         self.file.setframerate(int(round(stream.sample_rate)))
+        self.file.writeframes(b"")           # the header, now: it is never rewritten in a longer form
+        self.header_bytes = self.raw.tell()
+        self.frame_bytes = 4 if self.stereo else 2
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.file is not None
         data = chunk.with_gap_filled() * self.params["gain"]       # a gap becomes silence of its length
-        self.zero_filled += chunk.dropped
+        self.received += chunk.count
         self.clipped += int(np.count_nonzero(np.abs(data.view(np.float32) if self.stereo else data) > 1.0))
-        self.file.writeframes(self.pcm.encode(data).tobytes())
+        try:
+            self.file.writeframes(self.pcm.encode(data).tobytes())
+        except OSError as error:
+            self.failure = error.strerror or str(error)
+            raise
+        self.zero_filled += chunk.dropped
         self.frames += len(data)
         return {}
 
     def close(self) -> None:
         if self.file:
-            self.file.close()       # writes the final sizes into the header
-            self.raw.close()
+            try:
+                self.file.close()       # writes the final sizes into the header (only what was written whole)
+            finally:
+                self.file = None
+                if self.failure:
+                    # keep the whole frames written before the failure; count the rest
+                    os.ftruncate(self.raw.fileno(), self.header_bytes + self.frames * self.frame_bytes)
+                    self.not_written = self.received - (self.frames - self.zero_filled)
+                self.raw.close()
+
+    def losses(self) -> list[Loss]:
+        if not self.not_written:
+            return []
+        return [Loss(self.not_written, f"not written to {self.path}: {self.failure}")]
 
     def report(self) -> list[str]:
         clipped = f", {self.clipped} values clipped" if self.clipped else ""
         gaps = f", {self.zero_filled} of them silence for missing input" if self.zero_filled else ""
-        return [f"wrote {self.frames} frames to {self.path or '?'}{gaps}{clipped}"]
+        failed = f"; {self.not_written} frames not written ({self.failure})" if self.not_written else ""
+        return [f"wrote {self.frames} frames to {self.path or '?'}{gaps}{clipped}{failed}"]

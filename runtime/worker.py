@@ -24,8 +24,10 @@ its consumers have finished.
 from __future__ import annotations
 
 import os
+import shutil
 import signal
 import sys
+import tempfile
 import time
 import traceback
 from pathlib import Path
@@ -73,9 +75,14 @@ class Worker:
         self.parent = os.getppid()
 
     # -- control and statistics -------------------------------------------------------------
+    @property
+    def parent_gone(self) -> bool:
+        """The supervisor has died (this process was handed to another parent)."""
+        return os.getppid() != self.parent
+
     def poll_control(self) -> bool:
         """Read what the supervisor said; True once the run is being aborted."""
-        if os.getppid() != self.parent:
+        if self.parent_gone:
             self.abort = True          # the supervisor is gone: nobody will ever stop us
         while True:
             try:
@@ -205,15 +212,25 @@ class Worker:
         while not self.released and not self.poll_control():
             time.sleep(0.02)
 
-    def close(self, event: WorkerEvent, *, message: str = "") -> None:
-        """Close the block (flushing its files), send the last statistics, close every socket."""
+    def close(self, event: WorkerEvent, *, message: str = "") -> WorkerEvent:
+        """Close the block (flushing its files), send the last statistics, close every socket. A block
+        whose closing fails (its last data or its metadata not written) has failed: the event returned
+        is then ERROR, with the reason."""
         report: list[str] = []
         if self.block is not None:
             try:
                 self.block.close()
+            except Exception as error:
+                reason = describe_failure(error)
+                if event is not WorkerEvent.ERROR:
+                    print(f"bandloom: block {self.name!r} failed while closing: {reason}", file=sys.stderr)
+                    event, message = WorkerEvent.ERROR, reason
+                else:
+                    message = f"{message}; then closing failed: {reason}"
+            try:
                 report = list(self.block.report())
-            except Exception as error:  # closing must not hide the run's own outcome
-                report = [f"closing failed: {error}"]
+            except Exception as error:  # a report must not hide the run's own outcome
+                report = [f"report failed: {describe_failure(error)}"]
         try:
             self.send_stats(event, report=report, message=message)
         except zmq.ZMQError:
@@ -224,8 +241,22 @@ class Worker:
             for outlet in outs:
                 outlet.close(discard=event is not WorkerEvent.DONE)
         self.control.close()
-        self.stats_socket.close(linger=5000)
+        # the last statistics may wait a while for a busy supervisor, but not for one that is gone
+        self.stats_socket.close(linger=0 if self.parent_gone else 5000)
         self.context.term()
+        if self.parent_gone:
+            remove_run_folder(self.spec)
+        return event
+
+
+def remove_run_folder(spec: WorkerSpec) -> None:
+    """The supervisor died without cleaning up: remove the run's private folder (its sockets and
+    specs), which is the folder of the control socket, if it is one of ours."""
+    if not spec.control.startswith("ipc://"):
+        return
+    folder = Path(spec.control[len("ipc://"):]).parent
+    if folder.name.startswith("bandloom-") and folder.parent == Path(tempfile.gettempdir()):
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def describe_failure(error: BaseException) -> str:
@@ -241,6 +272,8 @@ def main(argv: list[str] | None = None) -> int:
     """``python -m bandloom.runtime.worker SPEC.json``: run one block; 0 when done or aborted, 1 on failure."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    if hasattr(signal, "SIGXFSZ"):
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)     # a file-size limit is a write error naming the file
     reuse_chunk_buffers()
     args = sys.argv[1:] if argv is None else argv
     spec = WorkerSpec.from_json(Path(args[0]).read_text())
@@ -248,8 +281,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         worker.run()
     except Aborted:
-        worker.close(WorkerEvent.ABORTED)
-        return 0
+        return 1 if worker.close(WorkerEvent.ABORTED) is WorkerEvent.ERROR else 0
     except Exception as error:
         message = describe_failure(error)
         print(f"bandloom: block {worker.name!r} failed: {message}", file=sys.stderr)
@@ -257,8 +289,7 @@ def main(argv: list[str] | None = None) -> int:
             print(traceback.format_exc(), file=sys.stderr)
         worker.close(WorkerEvent.ERROR, message=message)
         return 1
-    worker.close(WorkerEvent.ABORTED if worker.abort else WorkerEvent.DONE)
-    return 0
+    return 1 if worker.close(WorkerEvent.ABORTED if worker.abort else WorkerEvent.DONE) is WorkerEvent.ERROR else 0
 
 
 if __name__ == "__main__":
