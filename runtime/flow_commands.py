@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import shutil
 import sys
 from pathlib import Path
@@ -16,7 +17,7 @@ from bandloom.blocks.units import format_frequency
 from .flow import Flow, FlowErrors, load_flow
 from .plugins import Registry, load_registry
 from .run_report import print_summary
-from .supervisor import RunOutcome, Supervisor
+from .supervisor import DRAIN_SECONDS, RunOutcome, Supervisor
 
 __all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys",
            "run_run"]
@@ -82,6 +83,19 @@ def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--accept-loss", action="store_true", help="exit 0 even if samples were lost (the verdict "
                         "still counts them); the flow file can say so with accept_loss = true under [flow]")
     parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
+    parser.add_argument("--drain-time", type=_drain_time, default=DRAIN_SECONDS, metavar="SECONDS",
+                        help=f"after Ctrl-C, wait this long for the flow to drain before aborting it (what is "
+                             f"still queued then is counted as lost; default {DRAIN_SECONDS:g})")
+
+
+def _drain_time(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not 0 <= value <= 3600:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds from 0 to 3600")
+    return value
 
 
 def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
@@ -90,7 +104,7 @@ def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) ->
     if flow is None:
         return 1
     output_dir = Path(args.out) if args.out else Path.cwd()
-    supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log)
+    supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time)
     outcome = supervisor.run()
     summary = supervisor.summary(accept_loss=args.accept_loss)
     print_summary(summary, supervisor.failures(), log, quiet=args.quiet)

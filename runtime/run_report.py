@@ -82,7 +82,8 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
                            "accepted": declared})
         if in_flight:
             losses.append({"samples": in_flight, "where": f"link {link.label}",
-                           "why": f"still in flight when the run {outcome}", "accepted": False})
+                           "why": f"still in flight when the run {'was ' if outcome == 'interrupted' else ''}{outcome}",
+                           "accepted": False})
     for name, record in blocks.items():
         for loss in (record.last.losses if record.last else []):
             losses.append({"samples": loss.samples, "where": f"block {name}", "why": loss.reason,

@@ -29,7 +29,7 @@ from .flow import Flow, Instance, Link
 from .run_report import StatusDisplay, describe_exit, summarise
 from .worker_spec import LinkSpec, WorkerSpec
 
-__all__ = ["BlockRecord", "RunOutcome", "Supervisor"]
+__all__ = ["BlockRecord", "DRAIN_SECONDS", "RunOutcome", "Supervisor"]
 
 DRAIN_SECONDS = 10.0
 ABORT_SECONDS = 5.0
@@ -93,8 +93,10 @@ def link_specs(folder: str, inst: Instance) -> tuple[dict[str, LinkSpec], dict[s
 class Supervisor:
     """Runs one flow: ``run()`` returns the outcome, ``summary()`` what happened."""
 
-    def __init__(self, flow: Flow, *, output_dir: str | Path, quiet: bool = False, log: TextIO = sys.stderr) -> None:
+    def __init__(self, flow: Flow, *, output_dir: str | Path, quiet: bool = False, log: TextIO = sys.stderr,
+                 drain_seconds: float = DRAIN_SECONDS) -> None:
         self.flow = flow
+        self.drain_seconds = drain_seconds
         self.output_dir = output_dir
         self.quiet = quiet
         self.log = log
@@ -191,8 +193,9 @@ class Supervisor:
             if self.interrupted and stopping_since is None:
                 stopping_since = now
                 self.say("stopping: sources end their streams, the rest drains (Ctrl-C again is not needed)")
-            if stopping_since is not None and aborting_since is None and now - stopping_since > DRAIN_SECONDS:
-                self.say(f"still draining after {DRAIN_SECONDS:g} s; aborting")
+            if stopping_since is not None and aborting_since is None and now - stopping_since > self.drain_seconds:
+                self.say(f"still draining after {self.drain_seconds:g} s; aborting (what is still queued is counted "
+                         f"as lost)")
                 aborting_since = now
             said_hello = (BlockState.RUNNING, BlockState.ENDING, BlockState.DONE)
             if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()):

@@ -159,3 +159,31 @@ def test_workers_notice_the_supervisor_is_killed_within_a_second_and_remove_the_
     json.loads((out / "band.sigmf-meta").read_text())
     samples = np.fromfile(data, np.complex64)
     assert len(samples) > 10_000 and np.all(np.isfinite(samples))
+
+
+def test_ctrl_c_with_a_slow_consumer_counts_what_the_drain_limit_discards(tmp_path):
+    """SIGINT while a slow sink holds the flow back, with --drain-time 1: after a second the run is aborted;
+    what was still queued is counted as in flight on its link and named in the verdict, and for the link
+    sent = received + in flight; the exit is the interrupt's."""
+    flow = tmp_path / "slow.toml"
+    flow.write_text(f'[blocks.band]\ntype = "scenario"\nsample_rate = {RATE}\nduration = 30\nchunk_size = 10000\n'
+                    '[blocks.slow]\ntype = "discard"\nrate_limit = "100 kHz"\n'
+                    '[[links]]\nfrom = "band.samples"\nto = "slow.samples"\nqueue = 8\n')
+    report_path = tmp_path / "report.json"
+    runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--out", str(tmp_path),
+                               "--report", str(report_path), "--drain-time", "1"], stderr=subprocess.PIPE)
+    time.sleep(4)
+    runner.send_signal(signal.SIGINT)
+    stderr = runner.communicate(timeout=60)[1].decode()
+    assert runner.returncode == -signal.SIGINT, stderr
+    assert "still draining after 1 s; aborting" in stderr
+    report = json.loads(report_path.read_text())
+    link = report["links"][0]
+    assert report["outcome"] == "interrupted"
+    assert link["in_flight_samples"] > 0
+    assert link["sent_samples"] == link["received_samples"] + link["in_flight_samples"]
+    assert report["losses"] == [{"samples": link["in_flight_samples"], "where": f"link {link['link']}",
+                                 "why": "still in flight when the run was interrupted", "accepted": False}]
+    assert f"verdict: {link['in_flight_samples']} samples lost" in stderr
+    discarded = int(report["blocks"]["slow"]["report"][0].split()[1])
+    assert discarded == link["received_samples"]

@@ -152,7 +152,7 @@ def test_the_verdict_counts_every_loss_once_and_says_what_was_accepted(tmp_path)
     assert summary["links"][0]["in_flight_samples"] == 100
     assert (summary["lost_samples"], summary["lost_samples_not_accepted"]) == (135, 105)
     assert verdict(summary) == ("verdict: 135 samples lost: 100 link live.samples -> sink.samples: still in flight "
-                                "when the run interrupted; 30 block live: 3 buffers dropped (allowed by the flow); "
+                                "when the run was interrupted; 30 block live: 3 buffers dropped (allowed by the flow); "
                                 "5 block live: unusable datagrams")
     accepted = summarise(flow, {"live": live, "sink": sink}, outcome="interrupted", seconds=1.0, accept_loss=True)
     assert accepted["lost_samples_not_accepted"] == 0 and verdict(accepted).endswith("— accepted (accept_loss)")
