@@ -11,6 +11,8 @@ import re
 from pathlib import Path
 from typing import IO, Any
 
+import numpy as np
+
 from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Pacer, Param, Port, StreamInfo
 from .output_files import replace_file, whole_records
 from .sample_formats import COMPLEX_FORMATS, FORMATS
@@ -253,7 +255,7 @@ class IQWriter(Block):
             self.gaps.append((self.written + self.zero_filled, chunk.dropped))
             self.zero_filled += chunk.dropped
         try:
-            self.file.write(self.format.encode(chunk.with_gap_filled()))
+            self.file.write(np.ascontiguousarray(self.format.encode(chunk.with_gap_filled())).data)
         except OSError as error:
             self.failure = error.strerror or str(error)
             raise

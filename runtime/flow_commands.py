@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import math
 import shutil
@@ -15,6 +16,7 @@ from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
 from .flow import Flow, FlowErrors, load_flow
+from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
 from .supervisor import DRAIN_SECONDS, RunOutcome, Supervisor
@@ -83,6 +85,9 @@ def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--accept-loss", action="store_true", help="exit 0 even if samples were lost (the verdict "
                         "still counts them); the flow file can say so with accept_loss = true under [flow]")
     parser.add_argument("--report", metavar="FILE", help="also write the run summary as JSON to FILE")
+    parser.add_argument("--metrics", metavar="[HOST:]PORT",
+                        help="serve the run's counters for a Prometheus scraper at http://HOST:PORT/metrics "
+                             "(HOST defaults to 127.0.0.1; another address warns that it is open to the network)")
     parser.add_argument("--drain-time", type=_drain_time, default=DRAIN_SECONDS, metavar="SECONDS",
                         help=f"after Ctrl-C, wait this long for the flow to drain before aborting it (what is "
                              f"still queued then is counted as lost; default {DRAIN_SECONDS:g})")
@@ -105,7 +110,20 @@ def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) ->
         return 1
     output_dir = Path(args.out) if args.out else Path.cwd()
     supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time)
-    outcome = supervisor.run()
+    with contextlib.ExitStack() as stack:
+        if args.metrics:
+            try:
+                host, port = parse_metrics_address(args.metrics)
+                server = stack.enter_context(MetricsServer(supervisor, host, port))
+            except MetricsAddressError as error:
+                print(f"bandloom: {error}", file=log)
+                return EXIT_FAILED
+            if not is_loopback(host):
+                print(f"bandloom: warning: metrics at {server.url} are open to every machine that can reach this "
+                      f"one (names of blocks and links, counts); use a loopback address or a firewall", file=log)
+            elif not args.quiet:
+                print(f"bandloom: metrics at {server.url}", file=log)
+        outcome = supervisor.run()
     summary = supervisor.summary(accept_loss=args.accept_loss)
     print_summary(summary, supervisor.failures(), log, quiet=args.quiet)
     if args.report:

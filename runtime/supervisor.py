@@ -53,6 +53,7 @@ class BlockRecord:
     rate: float = 0.0             # rows per second between the last two statistics
     exit_reason: str = ""
     report: tuple[str, ...] = ()
+    restarts: int = 0
 
     @property
     def pid(self) -> int:
