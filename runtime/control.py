@@ -136,6 +136,11 @@ class OutletStats:
     missing_rows: int = 0        # lost before this link, counted in the headers
     next_index: int = 0          # absolute index after the last row sent
     blocked_seconds: float = 0.0
+    # endpoints for outside programs only (None on links between blocks):
+    delivered_rows: int | None = None    # acknowledged by a consumer
+    consumers: int = 0                   # consumers that attached, one after another
+    resent_messages: int = 0             # sent again to a new consumer because the last one did not acknowledge them
+    refused: int = 0                     # consumers turned away because another one was attached
 
 
 @dataclass(frozen=True, kw_only=True)

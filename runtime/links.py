@@ -127,10 +127,7 @@ class Outlet(_LinkEnd):
         self.stream = spec.stream
         self.when_full = spec.when_full
         self.should_abort = should_abort
-        keys = spec.keys if spec.bind else None
-        self.sock, self.authenticator = open_socket(
-            context, zmq.PUSH, spec, bind=spec.bind,
-            prepare=(lambda sock: secure_server(sock, keys, context)) if keys else None)
+        self._open(context, spec)
         self.rows_per_message = max(1, MESSAGE_BYTES // (self.stream.width * self.stream.dtype.itemsize))
         self.next_index = 0          # index after the last row sent
         self.offered_index = 0       # index after the last row offered, sent or dropped
@@ -148,7 +145,14 @@ class Outlet(_LinkEnd):
         if s.channels:
             self._fixed.update(channels=list(s.channels), channel_frequencies=list(s.channel_frequencies))
 
-    def _send(self, frames: list, *, droppable: bool) -> bool:
+    def _open(self, context: zmq.Context, spec: LinkSpec) -> None:
+        keys = spec.keys if spec.bind else None
+        self.sock, self.authenticator = open_socket(
+            context, zmq.PUSH, spec, bind=spec.bind,
+            prepare=(lambda sock: secure_server(sock, keys, context)) if keys else None)
+
+    def _send(self, frames: list, *, droppable: bool, seq: int, rows: int) -> bool:
+        """Hand one message to the transport; False if it was dropped (only when ``droppable``)."""
         if droppable:
             try:
                 self.sock.send_multipart(frames, copy=False, flags=zmq.NOBLOCK)
@@ -188,7 +192,7 @@ class Outlet(_LinkEnd):
         flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity) else 0
         header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
                                     dropped=gap, **self._fixed)
-        if not self._send([header, data], droppable=self.when_full is WhenFull.DROP):
+        if not self._send([header, data], droppable=self.when_full is WhenFull.DROP, seq=self.seq, rows=count):
             self.dropped_rows += count
             self.dropped_messages += 1
             return
@@ -206,7 +210,7 @@ class Outlet(_LinkEnd):
         flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap else 0)
         header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
                                     dropped=gap, **self._fixed)
-        self._send([header, b""], droppable=False)
+        self._send([header, b""], droppable=False, seq=self.seq, rows=0)
         self.missing_rows += gap
         self.discontinuities += bool(gap)
         self.next_index += gap

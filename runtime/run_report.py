@@ -64,7 +64,11 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
     links = []
     losses: list[dict[str, Any]] = []
     for link, sent, received in link_counts(flow, blocks):
-        in_flight = max(0, sent.rows - received.rows) if received is not None else None
+        endpoint = sent.delivered_rows is not None
+        if endpoint:
+            in_flight: int | None = max(0, sent.rows - (sent.delivered_rows or 0))
+        else:
+            in_flight = max(0, sent.rows - received.rows) if received is not None else None
         links.append({
             "link": link.label, "where": link.declared_at,
             "sent_samples": sent.rows, "sent_messages": sent.messages,
@@ -75,15 +79,19 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
             "last_index": sent.next_index,
         })
+        if endpoint:
+            links[-1].update(delivered_samples=sent.delivered_rows, consumers=sent.consumers,
+                             resent_messages=sent.resent_messages, refused_consumers=sent.refused)
         if sent.dropped_rows:
             declared = link.options.when_full is WhenFull.DROP
             losses.append({"samples": sent.dropped_rows, "where": f"link {link.label}",
                            "why": "dropped while the link was full" + (' (when_full = "drop")' if declared else ""),
                            "accepted": declared})
         if in_flight:
+            when = f"when the run {'was ' if outcome == 'interrupted' else ''}{outcome}"
             losses.append({"samples": in_flight, "where": f"link {link.label}",
-                           "why": f"still in flight when the run {'was ' if outcome == 'interrupted' else ''}{outcome}",
-                           "accepted": False})
+                           "why": f"not acknowledged by a consumer of the endpoint {when}" if endpoint
+                           else f"still in flight {when}", "accepted": False})
     for name, record in blocks.items():
         for loss in (record.last.losses if record.last else []):
             losses.append({"samples": loss.samples, "where": f"block {name}", "why": loss.reason,
@@ -127,6 +135,13 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
         print("\n".join("  " + line for line in render_rows(headers, rows).splitlines()), file=log)
         print("  (dropped: lost on this link when full; missing: lost before it, counted and flagged"
               + ("; in flight: sent, not yet received when the run stopped" if show_flight else "") + ")", file=log)
+        for x in summary["links"]:
+            if "delivered_samples" in x:
+                notes = [f"{x['resent_messages']} messages sent again after a consumer left"] if x["resent_messages"] \
+                    else []
+                notes += [f"{x['refused_consumers']} consumers refused (one at a time)"] if x["refused_consumers"] else []
+                print(f"  {x['link']}: {x['delivered_samples']} samples acknowledged by {x['consumers']} consumer"
+                      f"{'s' if x['consumers'] != 1 else ''}" + "".join(f"; {n}" for n in notes), file=log)
         for name, block in summary["blocks"].items():
             for line in block["report"]:
                 print(f"  {name}: {line}", file=log)

@@ -11,19 +11,24 @@ payload's length. Nothing is ever unpickled or evaluated.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Any
 
 import msgpack
 import numpy as np
 from bandloom.blocks.sample_formats import STREAM_TYPES
 
-__all__ = ["FLAG_DISCONTINUITY", "FLAG_END", "HEADER_LIMIT", "MAX_ROWS", "SAMPLE_TYPES", "VERSION", "WireError",
-           "decode_header", "decode_payload", "encode_header"]
+__all__ = ["FLAG_DISCONTINUITY", "FLAG_END", "FLAG_REFUSED", "HEADER_LIMIT", "MAX_CREDIT", "MAX_ROWS", "REQUEST_LIMIT",
+           "Request", "SAMPLE_TYPES", "VERSION", "WireError", "decode_header", "decode_payload", "decode_request",
+           "encode_header", "encode_request"]
 
 VERSION = 1
 HEADER_LIMIT = 64 * 1024
 FLAG_END = 1
 FLAG_DISCONTINUITY = 2
+FLAG_REFUSED = 4             # endpoints: this consumer is turned away (another is attached); ``reason`` says why
+REQUEST_LIMIT = 256          # bytes of a consumer's request, at most
+MAX_CREDIT = 1 << 16         # messages a consumer may ask for ahead
 SAMPLE_TYPES = STREAM_TYPES
 MAX_ROWS = 1 << 28
 
@@ -31,7 +36,7 @@ _REQUIRED = {
     "version": int, "stream": str, "seq": int, "first_index": int, "count": int, "width": int,
     "sample_type": str, "sample_rate": float, "centre_frequency": float, "flags": int,
 }
-_OPTIONAL = {"dropped": int, "channels": list, "channel_frequencies": list}
+_OPTIONAL = {"dropped": int, "channels": list, "channel_frequencies": list, "reason": str}
 
 
 class WireError(ValueError):
@@ -40,7 +45,8 @@ class WireError(ValueError):
 
 def encode_header(*, stream: str, seq: int, first_index: int, count: int, width: int, sample_type: str,
                   sample_rate: float, centre_frequency: float, flags: int = 0, dropped: int = 0,
-                  channels: list[int] | None = None, channel_frequencies: list[float] | None = None) -> bytes:
+                  channels: list[int] | None = None, channel_frequencies: list[float] | None = None,
+                  reason: str | None = None) -> bytes:
     """The header frame of a message (docs/wire.md), msgpack-encoded."""
     header = {
         "version": VERSION, "stream": stream, "seq": int(seq), "first_index": int(first_index),
@@ -51,6 +57,8 @@ def encode_header(*, stream: str, seq: int, first_index: int, count: int, width:
     if channels is not None:
         header["channels"] = [int(c) for c in channels]
         header["channel_frequencies"] = [float(f) for f in channel_frequencies or ()]
+    if reason is not None:
+        header["reason"] = reason
     return msgpack.packb(header, use_bin_type=True)
 
 
@@ -112,3 +120,45 @@ def decode_payload(header: dict[str, Any], payload: bytes | memoryview) -> np.nd
     if header["width"] > 1:
         array = array.reshape(header["count"], header["width"])
     return array
+
+
+@dataclass(frozen=True)
+class Request:
+    """What an endpoint's consumer sends (docs/wire.md, "Endpoints"): ``credit`` more messages it can take,
+    ``ack`` the ``seq`` of the last message it has processed (every earlier one too), ``bye`` when it leaves."""
+
+    credit: int = 0
+    ack: int | None = None
+    bye: bool = False
+
+
+def encode_request(credit: int = 0, *, ack: int | None = None, bye: bool = False) -> bytes:
+    values: dict[str, Any] = {"credit": int(credit)}
+    if ack is not None:
+        values["ack"] = int(ack)
+    if bye:
+        values["bye"] = True
+    return msgpack.packb(values, use_bin_type=True)
+
+
+def decode_request(raw: bytes | memoryview) -> Request:
+    """Check and unpack a consumer's request; raise WireError naming what is wrong."""
+    if len(raw) > REQUEST_LIMIT:
+        raise WireError(f"request is {len(raw)} bytes, more than the {REQUEST_LIMIT}-byte limit")
+    try:
+        values = msgpack.unpackb(bytes(raw), raw=False, strict_map_key=True, ext_hook=_no_extensions,
+                                 max_str_len=16, max_bin_len=0, max_array_len=0, max_map_len=3)
+    except WireError:
+        raise
+    except Exception as error:
+        raise WireError(f"request is not valid msgpack: {error}") from None
+    if not isinstance(values, dict) or not set(values) <= {"credit", "ack", "bye"}:
+        raise WireError("request must be a map with only the keys credit, ack and bye")
+    credit, ack, bye = values.get("credit", 0), values.get("ack"), values.get("bye", False)
+    if isinstance(credit, bool) or not isinstance(credit, int) or not 0 <= credit <= MAX_CREDIT:
+        raise WireError(f"request credit {credit!r} is not a whole number 0 .. {MAX_CREDIT}")
+    if ack is not None and (isinstance(ack, bool) or not isinstance(ack, int) or ack < 0):
+        raise WireError(f"request ack {ack!r} is not a message number (seq)")
+    if not isinstance(bye, bool):
+        raise WireError(f"request bye {bye!r} is not true or false")
+    return Request(credit, ack, bye)

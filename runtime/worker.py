@@ -38,6 +38,7 @@ from bandloom.blocks.block import Block, BlockContext, Output
 from . import wire
 from ._memory import reuse_chunk_buffers
 from .control import Control, ControlWord, StatsMessage, WorkerEvent
+from .endpoints import EndpointOutlet
 from .links import Aborted, Inlet, Outlet
 from .plugins import load_registry
 from .worker_spec import WorkerSpec
@@ -117,6 +118,13 @@ class Worker:
         self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 
+    def while_waiting(self) -> bool:
+        """Asked by a link while it waits for room: keep the statistics flowing (a waiting block is
+        still watched and scraped) and say whether the run is being aborted."""
+        if time.monotonic() - self.last_stats >= STATS_INTERVAL:
+            self.send_stats()
+        return self.poll_control()
+
     def maybe_stats(self) -> None:
         if time.monotonic() - self.last_stats >= STATS_INTERVAL:
             self.poll_control()
@@ -136,7 +144,8 @@ class Worker:
         for port, link in spec.inputs.items():
             self.inlets.append(Inlet(self.context, link, port))
         for port, links in spec.outputs.items():
-            self.outlets[port] = [Outlet(self.context, link, self.poll_control) for link in links]
+            self.outlets[port] = [(EndpointOutlet if link.bind else Outlet)(self.context, link, self.while_waiting)
+                                  for link in links]
         block.start(inputs)
         self.send_stats(WorkerEvent.HELLO)
         return block

@@ -173,24 +173,28 @@ def test_outside_program_consumes_a_channel_from_an_endpoint(tmp_path, recording
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
     ctx = zmq.Context()
-    sock = ctx.socket(zmq.PULL)
-    sock.setsockopt(zmq.MAXMSGSIZE, 1 << 30)
+    sock = ctx.socket(zmq.DEALER)
+    sock.setsockopt(zmq.MAXMSGSIZE, 16 << 20)
     sock.setsockopt(zmq.RCVTIMEO, 60_000)
     sock.connect(f"tcp://127.0.0.1:{port}")
+    sock.send(msgpack.packb({"credit": 8}))
     parts, headers = [], []
     try:
         while True:
             header_bytes, payload = sock.recv_multipart()
             assert len(header_bytes) <= 65536
             header = msgpack.unpackb(header_bytes, raw=False, strict_map_key=True)
+            assert not header["flags"] & 4, header.get("reason")
             headers.append(header)
+            if not header["flags"] & 1:
+                rows = np.frombuffer(payload, dtype={"cf32": "<c8", "f32": "<f4"}[header["sample_type"]])
+                assert rows.size == header["count"] * header["width"]
+                parts.append(rows)
+            sock.send(msgpack.packb({"credit": 1, "ack": header["seq"]}))
             if header["flags"] & 1:
                 break
-            rows = np.frombuffer(payload, dtype={"cf32": "<c8", "f32": "<f4"}[header["sample_type"]])
-            assert rows.size == header["count"] * header["width"]
-            parts.append(rows)
     finally:
-        sock.close(linger=0)
+        sock.close()
         ctx.term()
     _, stderr = runner.communicate(timeout=120)
     assert runner.returncode == 0, stderr
@@ -329,29 +333,32 @@ def test_encrypted_endpoint_needs_the_client_key(tmp_path, recording):
     runner = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet",
                                "--out", str(tmp_path / "out")], stderr=subprocess.PIPE, text=True)
     ctx = zmq.Context()
-    stranger = ctx.socket(zmq.PULL)
+    stranger = ctx.socket(zmq.DEALER)
     stranger.curve_publickey, stranger.curve_secretkey = zmq.curve_keypair()
     stranger.curve_serverkey, _ = zmq.auth.load_certificate(str(keys / "server.key"))
     stranger.setsockopt(zmq.RCVTIMEO, 1500)
     stranger.connect(f"tcp://127.0.0.1:{port}")
+    stranger.send(msgpack.packb({"credit": 8}))
     with pytest.raises(zmq.Again):
         stranger.recv_multipart()
     stranger.close(linger=0)
-    client = ctx.socket(zmq.PULL)
+    client = ctx.socket(zmq.DEALER)
     client.curve_publickey, client.curve_secretkey = zmq.auth.load_certificate(str(keys / "client.key_secret"))
     client.curve_serverkey, _ = zmq.auth.load_certificate(str(keys / "server.key"))
     client.setsockopt(zmq.RCVTIMEO, 60_000)
     client.connect(f"tcp://127.0.0.1:{port}")
+    client.send(msgpack.packb({"credit": 8}))
     parts = []
     try:
         while True:
             header_bytes, payload = client.recv_multipart()
             header = msgpack.unpackb(header_bytes, raw=False, strict_map_key=True)
+            client.send(msgpack.packb({"credit": 1, "ack": header["seq"]}))
             if header["flags"] & 1:
                 break
             parts.append(np.frombuffer(payload, "<c8"))
     finally:
-        client.close(linger=0)
+        client.close()
         ctx.term()
     _, stderr = runner.communicate(timeout=120)
     assert runner.returncode == 0, stderr
