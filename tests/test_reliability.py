@@ -82,20 +82,24 @@ def test_a_file_that_shrinks_while_read_is_an_error_after_its_whole_samples(tmp_
 
 
 def test_an_endpoint_that_cannot_be_bound_fails_the_run_at_once_naming_the_link(tmp_path):
-    """Two links on one port: the second cannot bind; the run fails within seconds (no hang), naming the link."""
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        port = probe.getsockname()[1]
+    """The endpoint's port is held by another program: the block cannot bind; the run fails within seconds
+    (no hang), naming the link. (Two links on one port are refused by check before anything starts:
+    tests/bad_flows/endpoint-bound-twice.toml.)"""
+    holder = socket.socket()
+    holder.bind(("127.0.0.1", 0))
+    holder.listen()
+    port = holder.getsockname()[1]
     (tmp_path / "bind.toml").write_text(
         '[blocks.band]\ntype = "scenario"\nsample_rate = "1 MHz"\nduration = "2 s"\n'
         '[blocks.split]\ntype = "channelizer"\nchannels = 8\n'
         '[[links]]\nfrom = "band.samples"\nto = "split.samples"\n'
-        f'[[links]]\nfrom = "split.channels"\nselect = 1\nendpoint = "tcp://127.0.0.1:{port}"\n'
+        '[[links]]\nfrom = "split.channels"\nselect = 1\nendpoint = "ipc://@bandloom-test-unused"\n'
         f'[[links]]\nfrom = "split.channels"\nselect = 2\nendpoint = "tcp://127.0.0.1:{port}"\n')
     started = time.monotonic()
     done = bandloom("run", tmp_path / "bind.toml", "--out", tmp_path, timeout=120)
     assert done.returncode == 1 and "Traceback" not in done.stderr
     assert time.monotonic() - started < 60
+    holder.close()
     assert (f"link split.channels[2] -> tcp://127.0.0.1:{port}: cannot bind tcp://127.0.0.1:{port}: "
             f"Address already in use") in done.stderr
     # the source never started: the start barrier was never passed, so nothing was sent and nothing lost

@@ -20,7 +20,7 @@ from bandloom.blocks.block import Block, Param, toml_repr
 
 from ..plugins import Registry
 from .model import LinkOptions, WhenFull
-from .problems import KeyPath, ProblemLog, did_you_mean, known_names
+from .problems import KeyPath, ProblemLog, did_you_mean, format_key_path, known_names
 
 __all__ = ["Declaration", "FLOW_KEYS", "FLOW_OPTIONS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS", "PLACEHOLDERS",
            "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
@@ -91,6 +91,17 @@ def parse_port_ref(text: object) -> tuple[str, str] | None:
     return (block, port) if block and port else None
 
 
+def endpoints_clash(one: str, other: str) -> bool:
+    """Whether two valid endpoints would bind the same place: the same ipc path, or the same tcp port on
+    the same host or on a wildcard host (which takes the port on every address)."""
+    if one.startswith("ipc://") or other.startswith("ipc://"):
+        return one == other
+    (host_a, _, port_a), (host_b, _, port_b) = (e[len("tcp://"):].rpartition(":") for e in (one, other))
+    wildcard = {"*", "0.0.0.0", "::"}
+    return port_a == port_b and (host_a.strip("[]") == host_b.strip("[]") or
+                                 bool({host_a.strip("[]"), host_b.strip("[]")} & wildcard))
+
+
 def endpoint_problem(text: str) -> tuple[str | None, bool]:
     """(what is wrong with an endpoint or None, whether only this machine can reach it)."""
     m = re.match(r"^tcp://(\[[^\]]+\]|[^:/\[\]]+):(\d{1,5})$", text)
@@ -133,6 +144,7 @@ class _TableReader:
         self.registry = registry
         self.flow_dir = flow_dir
         self.claimed: set[tuple[str, str | None]] = set()    # (block, input port) a link names, valid or not
+        self.endpoints: list[tuple[str, KeyPath]] = []      # each endpoint bound so far, and where
 
     # -- [blocks.NAME] ---------------------------------------------------------------------
     def declaration(self, name: str, table: Any) -> Declaration | None:
@@ -284,6 +296,12 @@ class _TableReader:
         if message:
             self.log.add(at + ("endpoint",), message)
             return False
+        for other, where in self.endpoints:
+            if endpoints_clash(endpoint, other):
+                self.log.add(at + ("endpoint",), f"{endpoint} takes the place {format_key_path(where)} binds "
+                             f"({other}); each endpoint serves one link: choose another port or path")
+                return False
+        self.endpoints.append((endpoint, at))
         if not loopback and not table.get("insecure") and not table.get("keys"):
             self.log.add(at + ("endpoint",), f"{endpoint} is reachable from other machines: give "
                          f"keys = \"FOLDER\" (see 'bandloom keys') to encrypt and authenticate it, or "
