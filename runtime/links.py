@@ -242,6 +242,7 @@ class Inlet(_LinkEnd):
         self.gaps = 0
         self.missing = 0
         self.last_seq = -1
+        self.next_index = 0          # absolute index after the last row received
         self.ended = False
 
     def receive(self) -> Chunk | None:
@@ -252,6 +253,11 @@ class Inlet(_LinkEnd):
         if len(frames) != 2:
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
         header = wire.decode_header(frames[0].buffer)
+        # The receiver checks continuity itself: rows skipped without being declared are counted too.
+        if header["first_index"] < self.next_index:
+            raise wire.WireError(f"message {header['seq']} starts at row {header['first_index']}, before the "
+                                 f"{self.next_index} rows already received")
+        header["dropped"] = header["first_index"] - self.next_index
         if header["flags"] & wire.FLAG_END:
             self.ended = True
             if not header["dropped"]:
@@ -259,19 +265,22 @@ class Inlet(_LinkEnd):
             # rows lost after the last message: an empty chunk tells the block how many
             self.gaps += 1
             self.missing += header["dropped"]
+            self.next_index = header["first_index"]
             return Chunk(np.zeros((0,) if self.stream.width == 1 else (0, self.stream.width), self.stream.dtype),
                          header["first_index"], discontinuity=True, dropped=header["dropped"])
         if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
                                  f"was set up for {self.stream.sample_type} x {self.stream.width}")
         data = wire.decode_payload(header, frames[1].buffer)
+        self.next_index = header["first_index"] + header["count"]
         self.rows += header["count"]
         self.messages += 1
         self.last_seq = header["seq"]
         if header["dropped"]:
             self.gaps += 1
             self.missing += header["dropped"]
-        return Chunk(data, header["first_index"], discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY),
+        return Chunk(data, header["first_index"],
+                     discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or header["dropped"]),
                      dropped=header["dropped"])
 
     def stats(self) -> InletStats:

@@ -130,3 +130,21 @@ def test_a_chunk_larger_than_the_message_cap_is_split_by_rows(ends):
     assert len(parts) == -(-data.nbytes // MESSAGE_BYTES) and parts[1].first_index == len(parts[0].data)
     assert np.array_equal(np.concatenate([p.data for p in parts]), data)
     assert outlet.stats().rows == inlet.stats().rows == n and inlet.stats().missing == 0
+
+
+def test_the_receiver_counts_rows_a_sender_skipped_without_saying_so(ends):
+    """A forged or faulty sender whose header says nothing is missing, while its index jumps: the receiver
+    counts the gap from the index itself; an index going backwards is refused, naming the message."""
+    from bandloom.runtime import wire
+    outlet, inlet = ends()
+    fixed = dict(stream="forged", sample_type="cf32", sample_rate=48000.0, centre_frequency=156e6, width=1)
+    payload = np.ones(10, np.complex64)
+    outlet.sock.send_multipart([wire.encode_header(seq=0, first_index=0, count=10, **fixed), payload])
+    outlet.sock.send_multipart([wire.encode_header(seq=1, first_index=25, count=10, **fixed), payload])
+    outlet.sock.send_multipart([wire.encode_header(seq=2, first_index=30, count=10, **fixed), payload])
+    assert inlet.receive().dropped == 0
+    second = inlet.receive()
+    assert (second.first_index, second.dropped, second.discontinuity) == (25, 15, True)
+    assert inlet.stats().missing == 15
+    with pytest.raises(wire.WireError, match="message 2 starts at row 30, before the 35 rows already received"):
+        inlet.receive()
