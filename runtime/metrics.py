@@ -4,7 +4,9 @@
 (HOST defaults to 127.0.0.1, loopback only) while the run lasts, with the
 ``prometheus_client`` library. Every scrape reads the supervisor's latest
 statistics from the workers (sent twice a second), so values are at most
-about half a second old. Names follow the exposition format's conventions:
+about half a second old, and two blocks' figures are read at different
+moments: a link's in-flight gauge is ``max(0, sent - received)`` of what its
+two ends last said (exact once both have ended, as in the run's summary). Names follow the exposition format's conventions:
 counters end in ``_total``, samples are counted in samples, ratios are 0..1.
 
 Per link (label ``link``, the link's label as the summary prints it):
