@@ -90,6 +90,17 @@ class Consumer:
             got.append((header, rows))
 
 
+def take_whole_stream(port):
+    """One consumer, its own context, from attach to end of stream."""
+    ctx = zmq.Context()
+    consumer = Consumer(ctx, port)
+    try:
+        return consumer.take_all()
+    finally:
+        consumer.sock.close()
+        ctx.term()
+
+
 def dropped_so_far(metrics_port, name="bandloom_link_dropped_samples_total"):
     """The endpoint's drops (or another counter) so far, read from the run's metrics endpoint (0 until it
     answers)."""
@@ -176,11 +187,7 @@ def test_a_late_consumer_of_a_dropping_endpoint_learns_where_it_starts(tmp_path)
     while dropped_so_far(metrics) < 3 * CHUNK:          # connect only once the endpoint has been dropping
         assert time.monotonic() < deadline and process.poll() is None
         time.sleep(0.2)
-    ctx = zmq.Context()
-    late = Consumer(ctx, port)
-    got, end = late.take_all()
-    late.sock.close()
-    ctx.term()
+    got, end = take_whole_stream(port)
     stderr, report = finish(process, report_path)
     assert process.returncode == 0, stderr
     received = sum(h["count"] for h, _ in got)
@@ -235,10 +242,8 @@ def test_a_hostile_request_is_refused_and_the_stream_goes_on(tmp_path):
             header = msgpack.unpackb(attacker.recv_multipart()[0], raw=False)
             assert header["flags"] & 4 and header["reason"].startswith("bad request: "), header
         attacker.close(linger=0)
-    good = Consumer(ctx, port)
-    got, end = good.take_all()
-    good.sock.close()
     ctx.term()
+    got, end = take_whole_stream(port)
     stderr, report = finish(process, report_path)
     assert process.returncode == 0, stderr
     assert sum(h["count"] for h, _ in got) == RATE and end["first_index"] == RATE
