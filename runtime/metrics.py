@@ -11,7 +11,7 @@ counters end in ``_total``, samples are counted in samples, ratios are 0..1.
 
 Per link (label ``link``, the link's label as the summary prints it):
 ``bandloom_link_sent_samples_total``, ``bandloom_link_received_samples_total``
-(links between blocks), ``bandloom_link_dropped_samples_total``,
+(for an endpoint: acknowledged by its consumers), ``bandloom_link_dropped_samples_total``,
 ``bandloom_link_missing_samples_total`` (gaps that arrived on the link),
 ``bandloom_link_in_flight_samples`` and ``bandloom_link_queue_fill_ratio``.
 Per block (label ``block``): ``bandloom_block_state`` (one series per state,
@@ -32,7 +32,7 @@ from prometheus_client.exposition import start_http_server
 from prometheus_client.registry import Collector, CollectorRegistry
 
 from .control import BlockState
-from .run_report import link_counts
+from .run_report import link_counts, queue_fill, received_and_in_flight
 
 if TYPE_CHECKING:
     from wsgiref.simple_server import WSGIServer
@@ -77,7 +77,7 @@ class FlowCollector(Collector):
         blocks = dict(supervisor.blocks)
         link = {name: (CounterMetricFamily(f"bandloom_link_{name}", doc, labels=["link"]))
                 for name, doc in (("sent_samples", "Samples sent on the link"),
-                                  ("received_samples", "Samples received from the link"),
+                                  ("received_samples", "Samples received from the link (endpoints: acknowledged)"),
                                   ("dropped_samples", "Samples the link dropped while full"),
                                   ("missing_samples", "Samples missing in gaps on the link"))}
         in_flight = GaugeMetricFamily("bandloom_link_in_flight_samples", "Samples sent and not yet received",
@@ -89,10 +89,13 @@ class FlowCollector(Collector):
             link["sent_samples"].add_metric(label, sent.rows)
             link["dropped_samples"].add_metric(label, sent.dropped_rows)
             link["missing_samples"].add_metric(label, sent.missing_rows)
-            if received is not None:
-                link["received_samples"].add_metric(label, received.rows)
-                in_flight.add_metric(label, max(0, sent.rows - received.rows))
-                fill.add_metric(label, min(1.0, max(0, sent.seq - (received.seq + 1)) / (2 * spec.options.queue)))
+            far, between = received_and_in_flight(sent, received)
+            if far is not None and between is not None:
+                link["received_samples"].add_metric(label, far)
+                in_flight.add_metric(label, between)
+            queued = queue_fill(spec, sent, received)
+            if queued is not None:
+                fill.add_metric(label, queued)
         yield from link.values()
         yield in_flight
         yield fill

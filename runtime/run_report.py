@@ -29,7 +29,8 @@ from .flow import Flow, Link, WhenFull
 if TYPE_CHECKING:
     from .supervisor import BlockRecord
 
-__all__ = ["StatusDisplay", "describe_exit", "link_counts", "print_summary", "summarise", "verdict"]
+__all__ = ["StatusDisplay", "describe_exit", "link_counts", "print_summary", "queue_fill", "received_and_in_flight",
+           "summarise", "verdict"]
 
 
 def describe_exit(code: int | None) -> str:
@@ -65,10 +66,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
     losses: list[dict[str, Any]] = []
     for link, sent, received in link_counts(flow, blocks):
         endpoint = sent.delivered_rows is not None
-        if endpoint:
-            in_flight: int | None = max(0, sent.rows - (sent.delivered_rows or 0))
-        else:
-            in_flight = max(0, sent.rows - received.rows) if received is not None else None
+        _, in_flight = received_and_in_flight(sent, received)
         links.append({
             "link": link.label, "where": link.declared_at,
             "sent_samples": sent.rows, "sent_messages": sent.messages,
@@ -148,6 +146,26 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
     print(f"bandloom: {verdict(summary)}", file=log)
 
 
+def received_and_in_flight(sent: OutletStats, received: InletStats | None) -> tuple[int | None, int | None]:
+    """What reached the far end of a link (for an endpoint: what its consumers acknowledged) and what is
+    still between the ends (sent - received, never below 0: the two ends report at different moments);
+    None for both when nothing is known of the far end."""
+    if sent.delivered_rows is not None:
+        far = sent.delivered_rows
+    elif received is not None:
+        far = received.rows
+    else:
+        return None, None
+    return far, max(0, sent.rows - far)
+
+
+def queue_fill(link: Link, sent: OutletStats, received: InletStats | None) -> float | None:
+    """Messages between a link's two ends over what its queues hold (0..1); None for an endpoint."""
+    if received is None:
+        return None
+    return min(1.0, max(0, sent.seq - (received.seq + 1)) / (2 * link.options.queue))
+
+
 class StatusDisplay:
     """A per-block status table redrawn in place on a terminal."""
 
@@ -156,12 +174,11 @@ class StatusDisplay:
         self.lines = 0
 
     def show(self, flow: Flow, blocks: Mapping[str, BlockRecord]) -> None:
-        queue_fill: dict[str, float] = {}
+        fills: dict[str, float] = {}
         for link, sent, received in link_counts(flow, blocks):
-            if link.target and received is not None:
-                in_flight = max(0, sent.seq - (received.seq + 1))
-                fill = min(1.0, in_flight / (2 * link.options.queue))
-                queue_fill[link.target] = max(queue_fill.get(link.target, 0.0), fill)
+            fill = queue_fill(link, sent, received)
+            if link.target and fill is not None:
+                fills[link.target] = max(fills.get(link.target, 0.0), fill)
         rows = []
         for name, record in blocks.items():
             last = record.last
@@ -171,7 +188,7 @@ class StatusDisplay:
             if last and last.progress and last.progress[1]:
                 part = min(1.0, last.progress[0] / last.progress[1])
                 bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
-            queue = f"{100 * queue_fill[name]:.0f}%" if name in queue_fill else "-"
+            queue = f"{100 * fills[name]:.0f}%" if name in fills else "-"
             rows.append([name[:24], record.state.value, float(f"{record.rate:.4g}"), done, queue, drops, bar])
         table = render_rows(["block", "state", "rate/s", "samples", "queue", "drops", "progress"], rows)
         self.clear()

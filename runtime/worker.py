@@ -118,17 +118,16 @@ class Worker:
         self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 
+    def maybe_stats(self) -> None:
+        """Statistics, when the last ones are STATS_INTERVAL old (the loops poll control themselves)."""
+        if time.monotonic() - self.last_stats >= STATS_INTERVAL:
+            self.send_stats()
+
     def while_waiting(self) -> bool:
         """Asked by a link while it waits for room: keep the statistics flowing (a waiting block is
         still watched and scraped) and say whether the run is being aborted."""
-        if time.monotonic() - self.last_stats >= STATS_INTERVAL:
-            self.send_stats()
+        self.maybe_stats()
         return self.poll_control()
-
-    def maybe_stats(self) -> None:
-        if time.monotonic() - self.last_stats >= STATS_INTERVAL:
-            self.poll_control()
-            self.send_stats()
 
     # -- set up ------------------------------------------------------------------------------
     def build(self) -> Block:
