@@ -16,6 +16,7 @@ __all__ = ["AMDemod", "FMDemod", "Resample", "Shift", "rational_ratio"]
 
 class Shift(Block):
     type_name = "shift"
+    restartable = True                # carries gaps, so a new instance can take over mid-stream
     summary = "Move a signal in frequency: the one at 'offset' from the centre comes down to 0 Hz."
     parameters = (Param("offset", "quantity", "offset from the centre frequency to bring to 0 Hz "
                         "(positive = above the centre)", unit="Hz"),)
@@ -50,6 +51,7 @@ def rational_ratio(target: float, rate: float) -> tuple[int, int]:
 
 class Resample(Block):
     type_name = "resample"
+    restartable = True                # carries gaps, so a new instance can take over mid-stream
     summary = "Change the sample rate by a ratio of whole numbers (same output as scipy's resample_poly)."
     parameters = (Param("rate", "quantity", "the output sample rate; it must be reachable exactly",
                         unit="Hz", minimum=1e-6),)
@@ -112,6 +114,7 @@ class Resample(Block):
 
 class FMDemod(Block):
     type_name = "fm-demod"
+    restartable = True                # carries gaps, so a new instance can take over mid-stream
     summary = "Frequency-demodulate a channel to audio (1.0 = full_scale deviation)."
     parameters = (
         Param("full_scale", "quantity", "deviation that gives audio level 1.0", default=5000.0, unit="Hz",
@@ -142,6 +145,7 @@ class FMDemod(Block):
 
 class AMDemod(Block):
     type_name = "am-demod"
+    restartable = True                # carries gaps, so a new instance can take over mid-stream
     summary = "Envelope-demodulate a channel to audio (1.0 = 100 % modulation)."
     parameters = (Param("dc_cutoff", "quantity", "the carrier level is followed below this frequency",
                         default=10.0, unit="Hz", minimum=0.1),)

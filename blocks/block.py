@@ -176,13 +176,20 @@ class BlockContext:
     """Where a block instance lives: its name, the flow's folder and the output folder.
 
     ``placeholders`` are the values a per-channel copy fills into its output
-    paths (``{channel}``, ``{frequency}``, ``{frequency_mhz}``).
+    paths (``{channel}``, ``{frequency}``, ``{frequency_mhz}``). ``restart`` is
+    how many instances of the block ran before this one (0: the first; see
+    :attr:`Block.restartable`); ``resumed_at`` gives, per input port of a
+    restarted instance, the absolute index up to which its predecessors last
+    reported having received (what they received after that report is
+    counted lost at the restart).
     """
 
     name: str
     flow_path: Path
     output_dir: Path
     placeholders: dict[str, Any] = field(default_factory=dict)
+    restart: int = 0
+    resumed_at: dict[str, int] = field(default_factory=dict)
 
     def input_path(self, text: str) -> Path:
         """A path from the flow file: relative to the flow file's folder."""
@@ -227,6 +234,13 @@ class Block:
         Declared ports.
     is_source : bool
         True for blocks without inputs that ``produce`` chunks.
+    restartable : bool
+        True when a new instance can take over part way through the streams
+        (``on_failure = "restart"``): its first chunk on each input comes at a
+        later ``first_index``, with ``dropped`` = ``first_index`` (it has seen
+        nothing before), and ``context.restart`` > 0. It must keep absolute
+        time from there, as for any gap; a writer continues the file its
+        predecessor wrote.
 
     Notes
     -----
@@ -260,6 +274,7 @@ class Block:
     inputs: ClassVar[tuple[Port, ...]] = ()
     outputs: ClassVar[tuple[Port, ...]] = ()
     is_source: ClassVar[bool] = False
+    restartable: ClassVar[bool] = False
     uses_stdin: ClassVar[bool] = False     # the one block of a flow that reads the run's standard input
     uses_stdout: ClassVar[bool] = False    # the one block of a flow that writes data to the run's standard output
 
@@ -337,6 +352,13 @@ class Block:
         path = self.context.output_path(text)
         path.parent.mkdir(parents=True, exist_ok=True)
         return path, open_output_file(path, mode, **options)
+
+    def kept_from_predecessor(self, port: str) -> int | None:
+        """For a restarted instance (:attr:`restartable`), called after :meth:`start`: the absolute index
+        up to which the failed instance's work on input ``port`` is kept (for a writer, the samples its
+        file holds), or None when nothing of it is kept. What it read after its last report up to there
+        then counts as received, not lost at the restart."""
+        return None
 
     def warn(self, message: str) -> None:
         """One line on the run's stderr, naming this block."""

@@ -11,6 +11,7 @@ __all__ = ["Discard"]
 
 class Discard(Block):
     type_name = "discard"
+    restartable = True                # carries gaps, so a new instance can take over mid-stream
     summary = "Take any stream and throw it away, counting samples and gaps."
     parameters = (Param("rate_limit", "quantity", "take at most this many samples per second, to rehearse a "
                         "slow consumer (0 = as fast as they come)", default=0.0, unit="Hz", minimum=0.0),)

@@ -212,6 +212,7 @@ class IQReader(Block):
 
 class IQWriter(Block):
     type_name = "iq-writer"
+    restartable = True                # a new instance continues the file (see _resume)
     summary = "Write one stream of IQ samples to a raw file (cf32, cf64, ci16, ci8 or cu8)."
     parameters = (
         Param("path", "output-path", "the file, relative to the output folder; may use {channel}, "
@@ -232,6 +233,9 @@ class IQWriter(Block):
         self.received = 0             # samples of the input taken
         self.not_written = 0          # samples taken but not in the file after a failed write
         self.failure = ""             # the failed write's reason
+        self.base = 0                 # samples already in the file when this instance took it over
+        self.resuming = False         # a restarted instance that has not yet had its first chunk
+        self.lost_before = 0          # received by the failed instance, not in its file
 
     def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         path = self.params["path"]
@@ -243,17 +247,43 @@ class IQWriter(Block):
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.stream = inputs["samples"]
         self.format = FORMATS[self.params["format"]]
-        self.path, self.file = self.open_output(self.params["path"])
+        path = self.context.output_path(self.params["path"])
+        if self.context.restart and path.is_file():
+            self._resume(path)
+        else:
+            self.path, self.file = self.open_output(self.params["path"])
         self._write_metadata()          # valid from the start; replaced whole at the end
+
+    def _resume(self, path: Path) -> None:
+        """Continue the file a failed instance wrote: keep its whole samples and its gaps; the first
+        chunk then fills with zeros from the end of the file to its first index."""
+        self.path, self.file = self.open_output(self.params["path"], "ab")
+        self.base = whole_records(self.file, self.format.bytes_per_sample)
+        self.resuming = True
+        self.lost_before = max(0, self.context.resumed_at.get("samples", 0) - self.base)
+        try:
+            annotations = json.loads(sigmf_meta_path(path).read_text())["annotations"]
+            self.gaps = [(int(a["core:sample_start"]), int(a["core:sample_count"])) for a in annotations
+                         if int(a["core:sample_start"]) < self.base]
+        except (OSError, ValueError, KeyError, TypeError):
+            self.warn(f"the gaps noted before the restart are not known (no readable {sigmf_meta_path(path)})")
+
+    def kept_from_predecessor(self, port: str) -> int | None:
+        return self.base if self.resuming else None
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.file is not None
         self.received += chunk.count
-        if chunk.dropped:
+        gap = chunk.dropped
+        if self.resuming:                 # from the end of the file the failed instance left
+            gap, self.resuming = chunk.first_index - self.base, False
+        if gap:
             # A raw file has no way to mark a gap: keep absolute time with zeros
             # (and say so in the metadata's annotations).
-            self.gaps.append((self.written + self.zero_filled, chunk.dropped))
-            self.zero_filled += chunk.dropped
+            self.gaps.append((self.base + self.written + self.zero_filled, gap))
+            self.zero_filled += gap
+        if gap != chunk.dropped:
+            chunk = Chunk(chunk.data, chunk.first_index, discontinuity=True, dropped=gap)
         try:
             self.file.write(np.ascontiguousarray(self.format.encode(chunk.with_gap_filled())).data)
         except OSError as error:
@@ -277,7 +307,7 @@ class IQWriter(Block):
         if self.file and self.path:
             if self.failure:
                 # keep every whole sample written before the failure; count the rest
-                in_file = whole_records(self.file, self.format.bytes_per_sample)
+                in_file = whole_records(self.file, self.format.bytes_per_sample) - self.base
                 self.written = max(0, min(self.received, in_file - self.zero_filled))
                 self.not_written = self.received - self.written
             self.file.close()
@@ -285,11 +315,13 @@ class IQWriter(Block):
             self._write_metadata()
 
     def losses(self) -> list[Loss]:
-        if not self.not_written:
-            return []
-        return [Loss(self.not_written, f"not written to {self.path}: {self.failure}")]
+        losses = [Loss(self.not_written, f"not written to {self.path}: {self.failure}")] if self.not_written else []
+        if self.lost_before:
+            losses.append(Loss(self.lost_before, f"received by the instance that failed, not in {self.path}"))
+        return losses
 
     def report(self) -> list[str]:
         gaps = f", {self.zero_filled} zero-filled for gaps" if self.zero_filled else ""
         failed = f"; {self.not_written} samples not written ({self.failure})" if self.not_written else ""
-        return [f"wrote {self.written} samples to {self.path or '?'}{gaps}{failed}"]
+        resumed = f" after the {self.base} its failed predecessor wrote" if self.context.restart and self.path else ""
+        return [f"wrote {self.written} samples to {self.path or '?'}{resumed}{gaps}{failed}"]

@@ -2,21 +2,25 @@
 to supervisor), and the life cycle of a block as the supervisor sees it.
 
 Control goes over one PUB socket that every worker subscribes to; each
-message is one word, or ``release NAME`` for one block. PUB drops what a
-subscriber is not yet connected for, so the supervisor repeats ``go``,
-``stop`` and ``abort`` on every turn of its loop until they have taken effect. Statistics go back
+message is one word, or a word and the block it is about (``release NAME``,
+``detach NAME``, ``attach NAME``). PUB drops what a subscriber is not yet
+connected for, so the supervisor repeats ``go``, ``stop``, ``abort``,
+``detach`` and ``attach`` on every turn of its loop while they hold; a worker
+takes a repeated word as it took the first. Statistics go back
 over PUSH/PULL as a msgpack map (:class:`StatsMessage`), twice a second and
 at every change of state. Both sockets live in the run's private folder.
 
-Block states change only through :data:`TRANSITIONS`: a worker's event, or
-the supervisor seeing the process end, moves a block from one state to the
-next; anything the table does not name leaves the state as it is.
+Block states change through :data:`TRANSITIONS`: a worker's event, or the
+supervisor seeing the process end, moves a block from one state to the next;
+anything the table does not name leaves the state as it is. The one other
+move is the supervisor's own: a block that failed under ``on_failure =
+"restart"`` is RESTARTING until its new process starts (STARTING again).
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields, replace
 from enum import Enum
 from typing import Any
 
@@ -24,7 +28,7 @@ import msgpack
 from bandloom.blocks.block import Loss
 
 __all__ = ["BlockState", "Control", "ControlWord", "InletStats", "OutletStats", "ProcessEnd", "StatsMessage",
-           "TERMINAL_STATES", "TRANSITIONS", "WorkerEvent", "next_state"]
+           "TERMINAL_STATES", "TRANSITIONS", "WorkerEvent", "add_counters", "next_state"]
 
 
 class ControlWord(str, Enum):
@@ -34,6 +38,8 @@ class ControlWord(str, Enum):
     STOP = "stop"          # sources end their streams; the rest drains
     ABORT = "abort"        # close everything now
     RELEASE = "release"    # every consumer of the named block has finished: it may close its links
+    DETACH = "detach"      # the named block is down: its producers drop what they would send it, counted
+    ATTACH = "attach"      # the named block is up (again): its producers send to it
 
 
 @dataclass(frozen=True)
@@ -89,6 +95,7 @@ class BlockState(str, Enum):
     ERROR = "error"        # reported an error; its process has not ended yet
     FAILED = "failed"      # reported an error, and its process ended
     DIED = "died"          # its process ended without saying why
+    RESTARTING = "restarting"  # failed or died; a new process takes its place after the restart delay
 
     @property
     def is_failure(self) -> bool:
@@ -134,6 +141,7 @@ class OutletStats:
     dropped_messages: int = 0
     discontinuities: int = 0     # messages flagged as following a gap
     missing_rows: int = 0        # lost before this link, counted in the headers
+    down_rows: int = 0           # of dropped_rows: dropped while the consumer was down (restarting, or left down)
     next_index: int = 0          # absolute index after the last row sent
     blocked_seconds: float = 0.0
     # endpoints for outside programs only (None on links between blocks):
@@ -152,6 +160,28 @@ class InletStats:
     seq: int = -1                # sequence number of the last message read
     gaps: int = 0
     missing: int = 0
+    next_index: int = 0          # absolute index after the last row received (or counted missing)
+    lost_at_restart: int = 0     # sent to the instance before a restart, read by none (part of ``missing``)
+
+
+#: Counters that say where a link's end stands (taken from the later instance), not how much it did.
+_POSITIONS = frozenset({"seq", "next_index"})
+
+
+def add_counters(earlier: OutletStats | InletStats | None, later: OutletStats | InletStats | None) -> Any:
+    """One end of a link over two instances of its block (before and after a restart): counts add up,
+    positions are the later instance's.
+
+    >>> add_counters(InletStats(rows=5, next_index=5), InletStats(rows=3, next_index=9, missing=1))
+    InletStats(rows=8, messages=0, seq=-1, gaps=0, missing=1, next_index=9, lost_at_restart=0)
+    """
+    if earlier is None or later is None:
+        return later if earlier is None else earlier
+    values = {}
+    for f in fields(later):
+        a, b = getattr(earlier, f.name), getattr(later, f.name)
+        values[f.name] = b if f.name in _POSITIONS or a is None or b is None else a + b
+    return replace(later, **values)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -175,6 +205,16 @@ class StatsMessage:
     report: list[str] = field(default_factory=list)
     losses: list[Loss] = field(default_factory=list)     # what the block itself lost, so far
     message: str = ""
+
+    def then(self, later: StatsMessage) -> StatsMessage:
+        """This instance's last statistics followed by those of the instance that took its place:
+        counters of each link added up, losses of both, the rest from ``later``."""
+        def combined(mine: dict[int, Any], theirs: dict[int, Any]) -> dict[int, Any]:
+            return {k: add_counters(mine.get(k), theirs.get(k)) for k in {**mine, **theirs}}
+
+        return replace(later, rows_in=self.rows_in + later.rows_in, rows_out=self.rows_out + later.rows_out,
+                       losses=self.losses + later.losses, inputs=combined(self.inputs, later.inputs),
+                       outputs=combined(self.outputs, later.outputs))
 
     def encode(self) -> bytes:
         values = asdict(self)

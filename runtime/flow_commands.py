@@ -16,6 +16,7 @@ from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
 from .flow import Flow, FlowErrors, load_flow
+from .flow.declarations import BLOCK_OPTIONS
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
@@ -154,10 +155,16 @@ def _default(param: Param) -> str:
 def blocks_markdown(registry: Registry, names: list[str]) -> str:
     lines = ["# Block reference", "",
              "Made by `bandloom blocks --markdown`; do not edit by hand. Parameters with units accept "
-             "\"2.4 MHz\", \"25 kHz\", \"-30 dBFS\", \"1.5 s\" or a plain number in the base unit.", ""]
+             "\"2.4 MHz\", \"25 kHz\", \"-30 dBFS\", \"1.5 s\" or a plain number in the base unit.", "",
+             "## Keys of every block with inputs", "",
+             "What the run does when the block's process fails or dies (docs/flow-files.md, \"When a block fails\").",
+             "", "| key | type | default | meaning |", "|---|---|---|---|"]
+    lines += [f"| `{p.name}` | {p.describe_type()} | {_default(p)} | {p.doc} |" for p in BLOCK_OPTIONS] + [""]
     for name in names:
         cls = registry.types[name]
         lines += [f"## {name}", "", cls.summary, ""]
+        if cls.restartable:
+            lines += ['Can be restarted part way through a stream (`on_failure = "restart"`).', ""]
         if cls.parameters:
             lines += ["| parameter | type | default | meaning |", "|---|---|---|---|"]
             for p in cls.parameters:
@@ -199,6 +206,10 @@ def run_blocks(args: argparse.Namespace, out: TextIO, log: TextIO | None = None)
             out.write("  (none)\n")
         for port in ports:
             out.write(f"  {port.name} ({port.kind}, {'/'.join(port.sample_types)}): {port.doc}\n")
+    if cls.inputs:
+        can = 'on_failure = "stop", "restart" or "continue"' if cls.restartable else \
+            'on_failure = "stop" or "continue" (it cannot take over part way through a stream)'
+        out.write(f"\nwhen it fails: {can}\n")
     return 0
 
 

@@ -12,6 +12,16 @@
   split across messages by rows, so every socket's ``MAXMSGSIZE`` (the
   same cap, plus the header's limit) is one the link can always honour and
   nothing is ever refused by the transport uncounted.
+* A consumer that is down (restarting, or left down by its ``on_failure``):
+  the supervisor says ``detach``; until ``attach``, what the outlet would
+  send it is dropped and counted (``down_rows``), never waited for, and an
+  end of stream is kept for the new instance. After ``attach`` the next
+  message declares the gap as usual, and an end of stream already sent is
+  sent again (the instance that read it may be the one that died).
+* A restarted block's ends start where its predecessor's last report left
+  them (``resume_index``); its inlets count what nobody read in between as
+  ``lost_at_restart``, while the block itself sees a first chunk whose
+  ``dropped`` covers everything before it (it has seen nothing).
 * Received messages are decoded with :mod:`.wire` (size limits, whitelists).
 * A socket whose bind or connect fails is closed at once and the failure
   names the link (a socket left open would keep its process from exiting).
@@ -129,13 +139,17 @@ class Outlet(_LinkEnd):
         self.should_abort = should_abort
         self._open(context, spec)
         self.rows_per_message = max(1, MESSAGE_BYTES // (self.stream.width * self.stream.dtype.itemsize))
-        self.next_index = 0          # index after the last row sent
-        self.offered_index = 0       # index after the last row offered, sent or dropped
-        self.seq = 0
+        self.next_index = spec.resume_index or 0    # index after the last row sent
+        self.offered_index = self.next_index        # index after the last row offered, sent or dropped
+        self.seq = spec.resume_seq
         self.rows = 0
         self.messages = 0
         self.dropped_rows = 0
         self.dropped_messages = 0
+        self.down_rows = 0           # of dropped_rows: while the consumer was down
+        self.attached = spec.attached
+        self.ended = False           # end() was called (its end of stream sent, or kept while detached)
+        self.final_index: int | None = None
         self.discontinuities = 0
         self.missing_rows = 0
         self.blocked_seconds = 0.0
@@ -163,6 +177,8 @@ class Outlet(_LinkEnd):
             self.blocked_seconds += POLL_MS / 1000
             if self.should_abort():
                 raise Aborted()
+            if not self.attached and rows:
+                return False         # the consumer went down while we waited for it
         started = time.monotonic()
         self.sock.send_multipart(frames, copy=False)
         self.blocked_seconds += time.monotonic() - started
@@ -192,9 +208,11 @@ class Outlet(_LinkEnd):
         flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity) else 0
         header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
                                     dropped=gap, **self._fixed)
-        if not self._send([header, data], droppable=self.when_full is WhenFull.DROP, seq=self.seq, rows=count):
+        if not self.attached or not self._send([header, data], droppable=self.when_full is WhenFull.DROP,
+                                               seq=self.seq, rows=count):
             self.dropped_rows += count
             self.dropped_messages += 1
+            self.down_rows += 0 if self.attached else count
             return
         self.seq += 1
         self.messages += 1
@@ -203,10 +221,29 @@ class Outlet(_LinkEnd):
         self.missing_rows += gap
         self.next_index = chunk.first_index + count
 
+    def detach(self) -> None:
+        """The consumer is down: drop and count until :meth:`attach`."""
+        self.attached = False
+
+    def attach(self) -> None:
+        """The consumer is up again: send to it; an end of stream already due is sent (again)."""
+        if self.attached:
+            return
+        self.attached = True
+        if self.ended:
+            self._send_end()
+
     def end(self, final_index: int | None = None) -> None:
         """Send end of stream, counting rows lost after the last message: dropped here when the
-        link was full, or (``final_index``, from a live source) never delivered to the block."""
-        gap = max(0, max(final_index or 0, self.offered_index) - self.next_index)
+        link was full, or (``final_index``, from a live source) never delivered to the block. While
+        the consumer is down the end is kept, and sent when it is attached again."""
+        self.ended = True
+        self.final_index = final_index
+        if self.attached:
+            self._send_end()
+
+    def _send_end(self) -> None:
+        gap = max(0, max(self.final_index or 0, self.offered_index) - self.next_index)
         flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap else 0)
         header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
                                     dropped=gap, **self._fixed)
@@ -218,12 +255,13 @@ class Outlet(_LinkEnd):
     def stats(self) -> OutletStats:
         return OutletStats(rows=self.rows, messages=self.messages, seq=self.seq, dropped_rows=self.dropped_rows,
                            dropped_messages=self.dropped_messages, discontinuities=self.discontinuities,
-                           missing_rows=self.missing_rows, next_index=self.next_index,
+                           missing_rows=self.missing_rows, down_rows=self.down_rows, next_index=self.next_index,
                            blocked_seconds=round(self.blocked_seconds, 3))
 
     def close(self, *, discard: bool = False) -> None:
-        """Close; queued messages are still delivered unless ``discard`` (abort, error)."""
-        self.sock.close(linger=0 if discard else None)
+        """Close; queued messages are still delivered unless ``discard`` (abort, error) or the consumer
+        is down (they are counted in flight: sent, read by nobody)."""
+        self.sock.close(linger=0 if discard or not self.attached else None)
         if self.authenticator:
             self.authenticator.stop()
 
@@ -242,8 +280,18 @@ class Inlet(_LinkEnd):
         self.gaps = 0
         self.missing = 0
         self.last_seq = -1
-        self.next_index = 0          # absolute index after the last row received
+        self.next_index = spec.resume_index or 0     # absolute index after the last row received or missed
+        self.block_index = 0                         # the same, as the block has seen it
+        self.resumed = spec.resume_index is not None
+        self.lost_at_restart = 0
         self.ended = False
+
+    def take_over(self, kept: int | None) -> None:
+        """A restarted block says its failed predecessor's work is kept up to index ``kept`` (a file it
+        continues): rows up to there that the predecessor read after its last report count as received."""
+        if kept is not None and self.resumed and kept > self.next_index:
+            self.rows += kept - self.next_index
+            self.next_index = kept
 
     def receive(self) -> Chunk | None:
         """Take one message; return a Chunk, or None at the end of the stream (then ``ended`` is set;
@@ -257,22 +305,30 @@ class Inlet(_LinkEnd):
         if header["first_index"] < self.next_index:
             raise wire.WireError(f"message {header['seq']} starts at row {header['first_index']}, before the "
                                  f"{self.next_index} rows already received")
+        declared = header["dropped"]
         header["dropped"] = header["first_index"] - self.next_index
+        for_block = header["first_index"] - self.block_index      # the gap as the block sees it
+        if self.resumed:
+            # the first message after a restart: what was sent but never declared missing went to
+            # the instance that died, or was lost with its connection
+            self.lost_at_restart = max(0, header["dropped"] - declared)
+            self.resumed = False
         if header["flags"] & wire.FLAG_END:
             self.ended = True
-            if not header["dropped"]:
+            if not for_block:
                 return None
             # rows lost after the last message: an empty chunk tells the block how many
-            self.gaps += 1
-            self.missing += header["dropped"]
-            self.next_index = header["first_index"]
+            if header["dropped"]:
+                self.gaps += 1
+                self.missing += header["dropped"]
+            self.next_index = self.block_index = header["first_index"]
             return Chunk(np.zeros((0,) if self.stream.width == 1 else (0, self.stream.width), self.stream.dtype),
-                         header["first_index"], discontinuity=True, dropped=header["dropped"])
+                         header["first_index"], discontinuity=True, dropped=for_block)
         if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
                                  f"was set up for {self.stream.sample_type} x {self.stream.width}")
         data = wire.decode_payload(header, frames[1].buffer)
-        self.next_index = header["first_index"] + header["count"]
+        self.next_index = self.block_index = header["first_index"] + header["count"]
         self.rows += header["count"]
         self.messages += 1
         self.last_seq = header["seq"]
@@ -280,12 +336,12 @@ class Inlet(_LinkEnd):
             self.gaps += 1
             self.missing += header["dropped"]
         return Chunk(data, header["first_index"],
-                     discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or header["dropped"]),
-                     dropped=header["dropped"])
+                     discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or for_block),
+                     dropped=for_block)
 
     def stats(self) -> InletStats:
         return InletStats(rows=self.rows, messages=self.messages, seq=self.last_seq, gaps=self.gaps,
-                          missing=self.missing)
+                          missing=self.missing, next_index=self.next_index, lost_at_restart=self.lost_at_restart)
 
     def close(self) -> None:
         self.sock.close(linger=0)

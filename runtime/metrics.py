@@ -106,7 +106,7 @@ class FlowCollector(Collector):
         restarts = CounterMetricFamily("bandloom_block_restarts", "Times the block was restarted", labels=["block"])
         for name, record in blocks.items():
             state.add_metric([name], {s.value: record.state is s for s in BlockState})
-            last = record.last
+            last = record.totals
             samples_in.add_metric([name], last.rows_in if last else 0)
             samples_out.add_metric([name], last.rows_out if last else 0)
             lost.add_metric([name], sum(x.samples for x in last.losses) if last else 0)

@@ -17,11 +17,16 @@ from importlib.metadata import entry_points
 from bandloom.blocks.block import Block, Param, Port
 from bandloom.blocks.params import KINDS
 
-__all__ = ["ENTRY_POINT_GROUP", "PluginError", "Registry", "load_registry", "validate_block_class"]
+__all__ = ["ENTRY_POINT_GROUP", "PluginError", "RESERVED_KEYS", "Registry", "load_registry", "validate_block_class"]
 
 ENTRY_POINT_GROUP = "bandloom.blocks"
 PARAM_KINDS = frozenset(KINDS)          # the rows of the kinds table
 PORT_KINDS = {"samples", "channels", "any"}
+
+
+#: Keys of a [blocks.NAME] table that belong to the runtime, not to the block type (the block options
+#: are declared in flow.declarations.BLOCK_OPTIONS; a test holds the two lists together).
+RESERVED_KEYS = ("type", "per_channel", "on_failure", "restarts", "restart_delay")
 
 
 class PluginError(Exception):
@@ -54,7 +59,7 @@ def validate_block_class(name: str, cls: object) -> None:
             raise PluginError(f"parameter {p!r} is not a Param")
         if p.kind not in PARAM_KINDS:
             raise PluginError(f"parameter {p.name!r} has unknown kind {p.kind!r}")
-        if p.name in seen or p.name in ("type", "per_channel"):
+        if p.name in seen or p.name in RESERVED_KEYS:
             raise PluginError(f"parameter name {p.name!r} is repeated or reserved")
         seen.add(p.name)
     for direction, ports in (("input", cls.inputs), ("output", cls.outputs)):

@@ -50,11 +50,13 @@ def link_counts(flow: Flow, blocks: Mapping[str, BlockRecord]) -> list[tuple[Lin
     rows = []
     for link in flow.links:
         source = blocks.get(link.source)
-        sent = source.last.outputs.get(link.id) if source and source.last else None
+        sending = source.totals if source else None
+        sent = sending.outputs.get(link.id) if sending else None
         received = None
         if link.target:
             target = blocks.get(link.target)
-            received = (target.last.inputs.get(link.id) if target and target.last else None) or InletStats()
+            receiving = target.totals if target else None
+            received = (receiving.inputs.get(link.id) if receiving else None) or InletStats()
         rows.append((link, sent or OutletStats(), received))
     return rows
 
@@ -73,31 +75,47 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             "received_samples": received.rows if received else None,
             "received_messages": received.messages if received else None,
             "in_flight_samples": in_flight,
-            "dropped_samples": sent.dropped_rows, "dropped_messages": sent.dropped_messages,
+            "lost_at_restart_samples": received.lost_at_restart if received else 0,
+            "dropped_samples": sent.dropped_rows, "dropped_while_down_samples": sent.down_rows,
+            "dropped_messages": sent.dropped_messages,
             "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
             "last_index": sent.next_index,
         })
         if endpoint:
             links[-1].update(delivered_samples=sent.delivered_rows, consumers=sent.consumers,
                              resent_messages=sent.resent_messages, refused_consumers=sent.refused)
-        if sent.dropped_rows:
+        consumer = blocks.get(link.target) if link.target else None
+        if sent.dropped_rows - sent.down_rows:
             declared = link.options.when_full is WhenFull.DROP
-            losses.append({"samples": sent.dropped_rows, "where": f"link {link.label}",
+            losses.append({"samples": sent.dropped_rows - sent.down_rows, "where": f"link {link.label}",
                            "why": "dropped while the link was full" + (' (when_full = "drop")' if declared else ""),
                            "accepted": declared})
+        if sent.down_rows:
+            policy = consumer.policy.on_failure.value if consumer else "?"
+            losses.append({"samples": sent.down_rows, "where": f"link {link.label}",
+                           "why": f"dropped while {link.target} was down (on_failure = \"{policy}\")", "accepted": False})
+        if received is not None and received.lost_at_restart:
+            losses.append({"samples": received.lost_at_restart, "where": f"link {link.label}",
+                           "why": f"sent to {link.target} before it failed, read by no instance (restarted)",
+                           "accepted": False})
         if in_flight:
             when = f"when the run {'was ' if outcome == 'interrupted' else ''}{outcome}"
-            losses.append({"samples": in_flight, "where": f"link {link.label}",
-                           "why": f"not acknowledged by a consumer of the endpoint {when}" if endpoint
-                           else f"still in flight {when}", "accepted": False})
+            why = f"not acknowledged by a consumer of the endpoint {when}" if endpoint else f"still in flight {when}"
+            if consumer is not None and consumer.left_down:
+                why = f"sent to {link.target} before it failed, read by nobody (on_failure = \"continue\")"
+            losses.append({"samples": in_flight, "where": f"link {link.label}", "why": why, "accepted": False})
     for name, record in blocks.items():
-        for loss in (record.last.losses if record.last else []):
+        totals = record.totals
+        for loss in (totals.losses if totals else []):
             losses.append({"samples": loss.samples, "where": f"block {name}", "why": loss.reason,
                            "accepted": loss.accepted})
-    report = {name: {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
-                     "reason": r.exit_reason, "report": list(r.report),
-                     "samples_in": r.last.rows_in if r.last else 0, "samples_out": r.last.rows_out if r.last else 0}
-              for name, r in blocks.items()}
+    report = {}
+    for name, r in blocks.items():
+        totals = r.totals
+        report[name] = {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
+                        "reason": r.exit_reason, "report": list(r.report), "restarts": r.restarts,
+                        "incidents": list(r.incidents),
+                        "samples_in": totals.rows_in if totals else 0, "samples_out": totals.rows_out if totals else 0}
     lost = sum(x["samples"] for x in losses)
     unaccepted = sum(x["samples"] for x in losses if not x["accepted"])
     return {"flow": str(flow.path), "name": flow.name, "outcome": outcome, "seconds": round(seconds, 3),
@@ -148,15 +166,14 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
 
 def received_and_in_flight(sent: OutletStats, received: InletStats | None) -> tuple[int | None, int | None]:
     """What reached the far end of a link (for an endpoint: what its consumers acknowledged) and what is
-    still between the ends (sent - received, never below 0: the two ends report at different moments);
+    still between the ends (sent - received - lost at a restart of the receiver, never below 0: the two
+    ends report at different moments);
     None for both when nothing is known of the far end."""
     if sent.delivered_rows is not None:
-        far = sent.delivered_rows
-    elif received is not None:
-        far = received.rows
-    else:
+        return sent.delivered_rows, max(0, sent.rows - sent.delivered_rows)
+    if received is None:
         return None, None
-    return far, max(0, sent.rows - far)
+    return received.rows, max(0, sent.rows - received.rows - received.lost_at_restart)
 
 
 def queue_fill(link: Link, sent: OutletStats, received: InletStats | None) -> float | None:
@@ -181,7 +198,7 @@ class StatusDisplay:
                 fills[link.target] = max(fills.get(link.target, 0.0), fill)
         rows = []
         for name, record in blocks.items():
-            last = record.last
+            last = record.totals
             drops = sum(o.dropped_rows for o in last.outputs.values()) if last else 0
             done = max(last.rows_in, last.rows_out) if last else 0
             bar = ""

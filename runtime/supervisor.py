@@ -4,8 +4,13 @@ Local links use ``ipc://`` endpoints in a private temporary folder (mode
 0700, removed at exit). The run ends when every worker has finished. Ctrl-C
 asks the sources to end their streams so everything downstream drains and
 closes its files; if that takes too long the run is aborted. A worker that
-dies is named with its exit reason, the others are aborted cleanly, and the
-run fails. What the run did is told by :mod:`.run_report`.
+fails or dies is named with its exit reason, and then its block's
+``on_failure`` decides: ``stop`` aborts the others cleanly and the run fails;
+``restart`` detaches the block from its producers (they drop and count what
+they would send it), starts a new process after the restart delay, whose
+links resume where the last one's stood, and attaches it again;
+``continue`` leaves the block down and the rest running, and the run fails
+at its end. What the run did is told by :mod:`.run_report`.
 """
 
 from __future__ import annotations
@@ -17,7 +22,7 @@ import subprocess
 import sys
 import tempfile
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import Enum
 from pathlib import Path
 from typing import Any, TextIO
@@ -25,7 +30,7 @@ from typing import Any, TextIO
 import zmq
 
 from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent, next_state
-from .flow import Flow, Instance, Link
+from .flow import FailurePolicy, Flow, Instance, Link, OnFailure
 from .run_report import StatusDisplay, describe_exit, summarise
 from .worker_spec import LinkSpec, WorkerSpec
 
@@ -53,11 +58,29 @@ class BlockRecord:
     rate: float = 0.0             # rows per second between the last two statistics
     exit_reason: str = ""
     report: tuple[str, ...] = ()
-    restarts: int = 0
+    policy: FailurePolicy = FailurePolicy()
+    restarts: int = 0             # new processes started after a failure
+    earlier: StatsMessage | None = None   # the instances before this one, their counters added up
+    incidents: list[str] = field(default_factory=list)   # failures survived (restarted, or left down)
+    restart_at: float = 0.0       # monotonic time of the pending restart (state RESTARTING)
+    left_down: bool = False       # on_failure = "continue": stays down
 
     @property
     def pid(self) -> int:
         return self.process.pid
+
+    @property
+    def totals(self) -> StatsMessage | None:
+        """The counters of every instance of the block so far (one, unless it was restarted)."""
+        if self.earlier is None or self.last is None:
+            return self.last or self.earlier
+        return self.earlier.then(self.last)
+
+    @property
+    def down(self) -> bool:
+        """Its producers must not wait for it: restarting, a new process not yet ready, or left down."""
+        return self.left_down or self.state is BlockState.RESTARTING or (
+            bool(self.restarts) and self.state is BlockState.STARTING)
 
     def absorb(self, message: StatsMessage) -> None:
         """Take a statistics message: counters, rate, and the state change its event makes."""
@@ -79,13 +102,26 @@ class BlockRecord:
         self.state = next_state(self.state, ProcessEnd.CLEAN if code == 0 else ProcessEnd.FAULT)
 
 
-def link_specs(folder: str, inst: Instance) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
-    """The ends of ``inst``'s links as its worker opens them."""
+def link_specs(folder: str, inst: Instance, *, earlier: StatsMessage | None = None,
+               down: frozenset[str] = frozenset()) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
+    """The ends of ``inst``'s links as its worker opens them. For a restarted block, ``earlier`` holds
+    its predecessors' counters (each end resumes where they left it); ``down`` names the blocks that
+    are down now (outputs to them start detached)."""
     def spec(link: Link, *, sending: bool) -> LinkSpec:
+        resume: dict = {}
+        if earlier is not None:
+            if sending:
+                out = earlier.outputs.get(link.id)
+                resume = dict(resume_index=out.next_index if out else 0, resume_seq=out.seq if out else 0)
+            else:
+                got = earlier.inputs.get(link.id)
+                resume = dict(resume_index=got.next_index if got else 0)
         return LinkSpec(link=link.id, label=link.label, endpoint=link.endpoint or f"ipc://{folder}/{link.id}",
                         stream=link.stream, bind=link.endpoint is not None if sending else True,
                         columns=link.columns if sending else None, queue=link.options.queue,
-                        when_full=link.options.when_full, keys=link.options.keys if sending else None)
+                        when_full=link.options.when_full, keys=link.options.keys if sending else None,
+                        consumer=link.target if sending else None,
+                        attached=not (sending and link.target in down), **resume)
     inputs = {port: spec(link, sending=False) for port, link in inst.inputs.items()}
     outputs = {port: [spec(link, sending=True) for link in links] for port, links in inst.outputs.items()}
     return inputs, outputs
@@ -107,20 +143,34 @@ class Supervisor:
         self.failed: list[str] = []
         self.elapsed = 0.0
         self.barrier_passed = False
+        self.folder = ""
+        self.workers_started = 0
 
-    def worker_specs(self, folder: str) -> list[tuple[Instance, WorkerSpec]]:
-        specs = []
-        for inst in self.flow.instances.values():
-            inputs, outputs = link_specs(folder, inst)
-            specs.append((inst, WorkerSpec(
-                name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
-                flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,
-                outputs=outputs, control=f"ipc://{folder}/control", stats=f"ipc://{folder}/stats")))
-        return specs
+    def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
+        """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
+        down = frozenset(name for name, r in self.blocks.items() if r.down)
+        inputs, outputs = link_specs(self.folder, inst, earlier=record.earlier if record else None, down=down)
+        return WorkerSpec(
+            name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
+            flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,
+            outputs=outputs, control=f"ipc://{self.folder}/control", stats=f"ipc://{self.folder}/stats",
+            restart=record.restarts if record else 0)
+
+    def start_worker(self, inst: Instance, spec: WorkerSpec) -> subprocess.Popen:
+        spec_path = os.path.join(self.folder, f"spec-{self.workers_started}.json")   # in flow order; restarts after
+        self.workers_started += 1
+        with open(spec_path, "w") as handle:
+            handle.write(spec.to_json())
+        # Only the block that reads standard input gets it, and only the one that
+        # writes data to standard output gets that; the rest print to stderr.
+        return subprocess.Popen(
+            [sys.executable, "-m", "bandloom.runtime.worker", spec_path],
+            stdin=None if inst.cls.uses_stdin else subprocess.DEVNULL,
+            stdout=None if inst.cls.uses_stdout else sys.stderr.fileno())
 
     # -- the run -------------------------------------------------------------------------------
     def run(self) -> RunOutcome:
-        folder = tempfile.mkdtemp(prefix="bandloom-")          # created with mode 0700
+        folder = self.folder = tempfile.mkdtemp(prefix="bandloom-")          # created with mode 0700
         os.chmod(folder, 0o700)
         context = zmq.Context()
         control = context.socket(zmq.PUB)
@@ -138,17 +188,9 @@ class Supervisor:
         signal.signal(signal.SIGTERM, request_stop)
         started = time.monotonic()
         try:
-            for number, (inst, spec) in enumerate(self.worker_specs(folder)):
-                spec_path = os.path.join(folder, f"spec-{number}.json")
-                with open(spec_path, "w") as handle:
-                    handle.write(spec.to_json())
-                # Only the block that reads standard input gets it, and only the one that
-                # writes data to standard output gets that; the rest print to stderr.
-                process = subprocess.Popen(
-                    [sys.executable, "-m", "bandloom.runtime.worker", spec_path],
-                    stdin=None if inst.cls.uses_stdin else subprocess.DEVNULL,
-                    stdout=None if inst.cls.uses_stdout else sys.stderr.fileno())
-                self.blocks[inst.name] = BlockRecord(inst.name, process)
+            for inst in self.flow.instances.values():
+                self.blocks[inst.name] = BlockRecord(inst.name, self.start_worker(inst, self.worker_spec(inst)),
+                                                     policy=inst.policy)
             self.watch(control, stats)
         finally:
             for record in self.blocks.values():
@@ -180,17 +222,23 @@ class Supervisor:
             now = time.monotonic()
             for record in self.blocks.values():
                 code = record.process.poll()
-                if code is not None and record.state not in TERMINAL_STATES:
+                if code is not None and record.state not in TERMINAL_STATES | {BlockState.RESTARTING}:
                     self.drain_stats(stats)
                     record.process_ended(code)
                     if record.state.is_failure:
-                        self.failed.append(record.name)
-            running = [r for r in self.blocks.values() if r.process.poll() is None]
-            if not running:
-                self.drain_stats(stats)
-                return
+                        self.block_failed(record, now, aborting=aborting_since is not None)
             if self.failed and aborting_since is None:
                 aborting_since = now
+                for record in self.blocks.values():
+                    if record.state is BlockState.RESTARTING:     # no new process for an aborted run
+                        record.state = BlockState.DIED
+            for record in self.blocks.values():
+                if record.state is BlockState.RESTARTING and now >= record.restart_at:
+                    self.restart(record)
+            running = [r for r in self.blocks.values() if r.process.poll() is None]
+            if not running and not any(r.state is BlockState.RESTARTING for r in self.blocks.values()):
+                self.drain_stats(stats)
+                return
             if self.interrupted and stopping_since is None:
                 stopping_since = now
                 self.say("stopping: sources end their streams, the rest drains (Ctrl-C again is not needed)")
@@ -205,6 +253,11 @@ class Supervisor:
                 control.send(Control(ControlWord.GO).encode())
             for name in self.releasable():
                 control.send(Control(ControlWord.RELEASE, name).encode())
+            for record in self.blocks.values():
+                if record.down:
+                    control.send(Control(ControlWord.DETACH, record.name).encode())
+                elif record.restarts:
+                    control.send(Control(ControlWord.ATTACH, record.name).encode())
             if aborting_since is not None:
                 control.send(Control(ControlWord.ABORT).encode())
                 if now - aborting_since > ABORT_SECONDS:
@@ -216,16 +269,45 @@ class Supervisor:
                 self.display.show(self.flow, self.blocks)
                 last_display = now
 
+    def block_failed(self, record: BlockRecord, now: float, *, aborting: bool) -> None:
+        """A block's process failed or died: restart it, leave it down, or stop the run (its on_failure)."""
+        policy = record.policy
+        what = self.failure_line(record)
+        if policy.on_failure is OnFailure.RESTART and record.restarts < policy.restarts and not aborting:
+            record.restarts += 1
+            delay = policy.delay(record.restarts)
+            record.incidents.append(f"{what}; restarted after {delay:g} s (restart {record.restarts} of "
+                                    f"{policy.restarts})")
+            self.say(f"{what}; restarting it in {delay:g} s (restart {record.restarts} of {policy.restarts})")
+            record.earlier, record.last = record.totals, None
+            record.state, record.restart_at = BlockState.RESTARTING, now + delay
+        elif policy.on_failure is OnFailure.CONTINUE and not aborting:
+            record.left_down = True
+            record.incidents.append(f"{what}; left down (on_failure = \"continue\"), the rest ran on")
+            self.say(f"{what}; the rest of the flow runs on without it (on_failure = \"continue\")")
+        else:
+            if policy.on_failure is OnFailure.RESTART and record.restarts >= policy.restarts:
+                gave_up = f"no restart left (restarts = {policy.restarts})"
+                record.exit_reason = f"{record.exit_reason}; {gave_up}" if record.exit_reason else gave_up
+            self.failed.append(record.name)
+
+    def restart(self, record: BlockRecord) -> None:
+        inst = self.flow.instances[record.name]
+        record.process = self.start_worker(inst, self.worker_spec(inst, record))
+        record.state, record.exit_reason, record.report, record.rate = BlockState.STARTING, "", (), 0.0
+
     def releasable(self) -> list[str]:
-        """Blocks that have ended their streams and whose every internal consumer has finished."""
+        """Blocks that have ended their streams and whose every internal consumer has finished (a block
+        that is restarting has not: its new process still needs the end of stream)."""
         ready = []
         for name, record in self.blocks.items():
             if record.state is not BlockState.ENDING or record.process.poll() is not None:
                 continue
-            consumers = {link.target for port in self.flow.instances[name].outputs.values()
-                         for link in port if link.target}
-            if all(self.blocks[c].process.poll() is not None
-                   or self.blocks[c].state in (BlockState.DONE, BlockState.ABORTED) for c in consumers):
+            consumers = [self.blocks[link.target] for port in self.flow.instances[name].outputs.values()
+                         for link in port if link.target]
+            if all(c.left_down or (not c.down and (c.process.poll() is not None
+                                                   or c.state in (BlockState.DONE, BlockState.ABORTED)))
+                   for c in consumers):
                 ready.append(name)
         return ready
 
@@ -239,7 +321,7 @@ class Supervisor:
     def absorb(self, raw: bytes) -> None:
         message = StatsMessage.decode(raw)
         record = self.blocks.get(message.block)
-        if record is not None:
+        if record is not None and message.pid == record.pid:      # not a late word from a process replaced
             record.absorb(message)
 
     def say(self, text: str) -> None:
@@ -250,7 +332,7 @@ class Supervisor:
 
     # -- outcome -------------------------------------------------------------------------------
     def outcome(self) -> RunOutcome:
-        if self.failed:
+        if self.failed or any(r.left_down for r in self.blocks.values()):
             return RunOutcome.FAILED
         return RunOutcome.INTERRUPTED if self.interrupted else RunOutcome.FINISHED
 
@@ -259,13 +341,13 @@ class Supervisor:
         return summarise(self.flow, self.blocks, outcome=self.outcome().value, seconds=self.elapsed,
                          accept_loss=accept_loss or self.flow.accept_loss)
 
+    @staticmethod
+    def failure_line(record: BlockRecord) -> str:
+        how = "failed" if record.state is BlockState.FAILED else "died"
+        reason = f": {record.exit_reason}" if record.exit_reason else ""
+        return f"block {record.name!r} (pid {record.pid}) {how} ({describe_exit(record.process.returncode)}){reason}"
+
     def failures(self) -> list[str]:
-        """One line per block that failed or died, with its exit and reason."""
-        lines = []
-        for name in self.failed:
-            record = self.blocks[name]
-            how = "failed" if record.state is BlockState.FAILED else "died"
-            reason = f": {record.exit_reason}" if record.exit_reason else ""
-            lines.append(f"block {name!r} (pid {record.pid}) {how} ({describe_exit(record.process.returncode)})"
-                         f"{reason}")
-        return lines
+        """One line per failure: those the run survived (restarted, or left down), then those that stopped it."""
+        lines = [line for record in self.blocks.values() for line in record.incidents]
+        return lines + [self.failure_line(self.blocks[name]) for name in self.failed]

@@ -10,8 +10,9 @@ stop, so that sources end their streams and everything downstream drains.
 Control messages from the supervisor and statistics back to it are those of
 :mod:`.control`: ``stop`` (sources end their streams), ``abort`` (close
 everything now), ``release NAME`` (every consumer of block NAME has read its
-end of stream, so NAME may close its links); statistics twice a second and
-at every change of state.
+end of stream, so NAME may close its links), ``detach NAME`` and ``attach
+NAME`` (block NAME is down, or up again: see :mod:`.links`); statistics twice
+a second and at every change of state.
 
 Why the release: ZeroMQ counts a message as sent once it is written to the
 connection. If the sender then closes while the receiver, held back by its
@@ -96,6 +97,9 @@ class Worker:
                 self.abort = True
             elif message.word is ControlWord.RELEASE and message.block == self.name:
                 self.released = True
+            elif message.word in (ControlWord.DETACH, ControlWord.ATTACH):
+                for outlet in self.outlets_to(message.block):
+                    outlet.detach() if message.word is ControlWord.DETACH else outlet.attach()
             elif message.word is ControlWord.GO:
                 self.go = True
             elif message.word is ControlWord.STOP:
@@ -103,6 +107,9 @@ class Worker:
                     self.block.stop_requested()
                 self.stop = True
         return self.abort
+
+    def outlets_to(self, consumer: str | None) -> list[Outlet]:
+        return [o for outs in self.outlets.values() for o in outs if consumer and o.spec.consumer == consumer]
 
     def send_stats(self, event: WorkerEvent = WorkerEvent.STATS, *, report: list[str] | None = None,
                    message: str = "") -> None:
@@ -136,7 +143,10 @@ class Worker:
         cls = registry.types.get(spec.type_name)
         if cls is None:
             raise RuntimeError(f"block type {spec.type_name!r} is not installed here")
-        context = BlockContext(self.name, Path(spec.flow_path), Path(spec.output_dir), spec.placeholders)
+        context = BlockContext(self.name, Path(spec.flow_path), Path(spec.output_dir), spec.placeholders,
+                               restart=spec.restart,
+                               resumed_at={port: link.resume_index for port, link in spec.inputs.items()
+                                           if link.resume_index is not None})
         block = self.block = cls(spec.params, context)
         inputs = {port: link.stream for port, link in spec.inputs.items()}
         block.output_streams(dict(inputs))          # validates again, in this process
@@ -146,6 +156,8 @@ class Worker:
             self.outlets[port] = [(EndpointOutlet if link.bind else Outlet)(self.context, link, self.while_waiting)
                                   for link in links]
         block.start(inputs)
+        for inlet in self.inlets:
+            inlet.take_over(block.kept_from_predecessor(inlet.port))
         self.send_stats(WorkerEvent.HELLO)
         return block
 

@@ -26,6 +26,12 @@ class LinkSpec:
     ``endpoint`` is the ZeroMQ address; ``bind`` says whether this end binds
     it (an input always does; an output only for an endpoint for outside
     programs). ``columns`` picks channels from the block's output (None: all).
+
+    ``consumer`` is the block at the far end of an output (None for an
+    endpoint). For a restarted block, ``resume_index`` and ``resume_seq`` are
+    where its predecessor's end of this link stood at its last report (None:
+    a first instance, starting at 0), and ``attached`` is False on an output
+    whose consumer is down when this worker starts (see :class:`.links.Outlet`).
     """
 
     link: int
@@ -37,6 +43,10 @@ class LinkSpec:
     queue: int = 8
     when_full: WhenFull = WhenFull.WAIT
     keys: str | None = None
+    consumer: str | None = None
+    attached: bool = True
+    resume_index: int | None = None
+    resume_seq: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         values = {f.name: getattr(self, f.name) for f in fields(self)}
@@ -70,6 +80,7 @@ class WorkerSpec:
     output_dir: str
     control: str
     stats: str
+    restart: int = 0                 # instances of this block before this one
     placeholders: dict[str, Any] = field(default_factory=dict)
     inputs: dict[str, LinkSpec] = field(default_factory=dict)
     outputs: dict[str, list[LinkSpec]] = field(default_factory=dict)

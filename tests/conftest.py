@@ -1,4 +1,7 @@
-"""Shared helpers: scipy brute-force oracles for the bank conventions."""
+"""Shared helpers: scipy brute-force oracles for the bank conventions, and a busy machine."""
+
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -40,3 +43,13 @@ def relative_error(actual, expected):
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261201)
+
+
+@pytest.fixture
+def busy_machine():
+    """Two CPU-bound processes beside the test, as a loaded machine has (ended afterwards)."""
+    burners = [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(2)]
+    yield
+    for b in burners:
+        b.kill()
+        b.wait()

@@ -68,6 +68,7 @@ class _Good(Block):
     (lambda c: setattr(c, "summary", ""), "no one-line summary"),
     (lambda c: setattr(c, "parameters", (Param("x", "colour", "?"),)), "unknown kind 'colour'"),
     (lambda c: setattr(c, "parameters", (Param("type", "int", "?"),)), "repeated or reserved"),
+    (lambda c: setattr(c, "parameters", (Param("on_failure", "int", "?"),)), "repeated or reserved"),
     (lambda c: setattr(c, "inputs", (Port("a", "wide", "?"),)), "is not a Port of kind"),
     (lambda c: setattr(c, "is_source", True), "a source block cannot have inputs"),
 ])
@@ -78,3 +79,11 @@ def test_block_contract_is_checked_at_registration(mutate, message):
     mutate(broken)
     with pytest.raises(PluginError, match=message):
         validate_block_class("good", broken)
+
+
+def test_reserved_keys_are_the_runtime_keys_of_a_block_table():
+    """A block parameter may not take a name the runtime reads from [blocks.NAME]: type, per_channel and
+    the failure options (held equal here so that a new option cannot be shadowed by a plugin)."""
+    from bandloom.runtime.flow.declarations import BLOCK_OPTION_KEYS
+    from bandloom.runtime.plugins import RESERVED_KEYS
+    assert RESERVED_KEYS == ("type", "per_channel", *BLOCK_OPTION_KEYS)

@@ -27,16 +27,6 @@ def make(type_name, params, tmp_path):
     return cls(full, BlockContext("b", tmp_path / "flow.toml", tmp_path))
 
 
-@pytest.fixture
-def busy_machine():
-    """Two CPU-bound processes beside the test, as a loaded machine has (ended afterwards)."""
-    burners = [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(2)]
-    yield
-    for b in burners:
-        b.kill()
-        b.wait()
-
-
 def test_a_piped_recording_loses_nothing_on_a_busy_machine(tmp_path, rng, busy_machine):
     """cat capture.cu8 | bandloom run: the reader holds the pipe while processes start and while the flow is
     busy, so every sample of the recording arrives (taken = file length, nothing dropped, verdict clean)."""

@@ -18,12 +18,12 @@ from typing import Any
 
 from bandloom.blocks.block import Block, Param, toml_repr
 
-from ..plugins import Registry
-from .model import LinkOptions, WhenFull
+from ..plugins import RESERVED_KEYS, Registry
+from .model import FailurePolicy, LinkOptions, OnFailure, WhenFull
 from .problems import KeyPath, ProblemLog, did_you_mean, format_key_path, known_names
 
-__all__ = ["Declaration", "FLOW_KEYS", "FLOW_OPTIONS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS", "PLACEHOLDERS",
-           "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
+__all__ = ["BLOCK_OPTIONS", "Declaration", "FLOW_KEYS", "FLOW_OPTIONS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS",
+           "PLACEHOLDERS", "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
 
 TOP_LEVEL_KEYS = ("flow", "blocks", "links")
 #: The keys of the [flow] table, declared like block parameters.
@@ -40,6 +40,21 @@ PLACEHOLDERS = ("channel", "frequency", "frequency_mhz")
 
 TOLERANCE = Param("tolerance", "quantity", "how far a frequency in 'select' may be from a channel centre "
                   "(default 5 % of the spacing)", default=None, unit="Hz", minimum=0, rule="a frequency >= 0")
+
+#: What the runtime does when a block's process fails: keys of any [blocks.NAME] table, beside its
+#: parameters; they become a FailurePolicy.
+BLOCK_OPTIONS: tuple[Param, ...] = (
+    Param("on_failure", "choice", "what the run does when this block fails or dies", default="stop",
+          choices=tuple(o.value for o in OnFailure),
+          rule="'stop' (the run fails), 'restart' (a new process takes over; what it missed is a counted gap) "
+               "or 'continue' (the block stays down, the rest runs on)"),
+    Param("restarts", "int", "with on_failure = \"restart\": how many times at most", default=3, minimum=1,
+          maximum=1000, rule="a whole number of restarts from 1 to 1000"),
+    Param("restart_delay", "quantity", "with on_failure = \"restart\": the wait before the first restart, "
+          "doubled for each one after", default=1.0, unit="s", minimum=0.0, maximum=3600.0,
+          rule="a duration from 0 s to 3600 s"),
+)
+BLOCK_OPTION_KEYS = tuple(p.name for p in BLOCK_OPTIONS)
 
 #: The options of a link, converted like block parameters; each becomes a field of LinkOptions.
 LINK_OPTIONS: tuple[Param, ...] = (
@@ -65,6 +80,7 @@ class Declaration:
     cls: type[Block]
     params: dict[str, Any]
     per_channel: dict[str, Any] | None
+    policy: FailurePolicy
     ok: bool                                                          # declared without problems
     feeds: list[tuple[int | str, str]] = field(default_factory=list)  # (links index or "per_channel", port)
 
@@ -153,7 +169,31 @@ class _TableReader:
         if read is None:
             return None
         cls, params, per_channel = read
-        return Declaration(name=name, cls=cls, params=params, per_channel=per_channel, ok=len(self.log) == before)
+        policy = self.failure_policy(name, cls, table)
+        return Declaration(name=name, cls=cls, params=params, per_channel=per_channel, policy=policy,
+                           ok=len(self.log) == before)
+
+    def failure_policy(self, name: str, cls: type[Block], table: dict[str, Any]) -> FailurePolicy:
+        at: KeyPath = ("blocks", name)
+        values: dict[str, Any] = {}
+        for param in BLOCK_OPTIONS:
+            good, values[param.name] = convert_option(self.log, at, param, table)
+            if not good:
+                return FailurePolicy()
+        policy = FailurePolicy(on_failure=OnFailure(values["on_failure"]), restarts=values["restarts"],
+                               restart_delay=values["restart_delay"])
+        if policy.on_failure is not OnFailure.STOP and cls.is_source:
+            self.log.add(at + ("on_failure",), f"{cls.type_name} is a source: when it fails its streams end, so "
+                         f"the run stops; on_failure applies to blocks with inputs")
+        elif policy.on_failure is OnFailure.RESTART and not cls.restartable:
+            kinds = known_names(sorted(t for t, c in self.registry.types.items() if c.restartable))
+            self.log.add(at + ("on_failure",), f"{cls.type_name} cannot be restarted part way through a stream; "
+                         f"use 'continue' or 'stop' (restartable types: {kinds})")
+        if policy.on_failure is not OnFailure.RESTART:
+            for key in ("restarts", "restart_delay"):
+                if key in table:
+                    self.log.add(at + (key,), f"{key} applies only with on_failure = \"restart\"")
+        return policy
 
     def _declaration(self, name: str, table: Any) -> tuple[type[Block], dict, dict | None] | None:
         log = self.log
@@ -175,7 +215,7 @@ class _TableReader:
         params: dict[str, Any] = {}
         declared = {p.name: p for p in cls.parameters}
         for key, value in table.items():
-            if key in ("type", "per_channel"):
+            if key in RESERVED_KEYS:
                 continue
             param = declared.get(key)
             if param is None:

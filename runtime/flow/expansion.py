@@ -245,7 +245,8 @@ class _Expander:
                 self.log.add(("blocks", name), str(error))
             return
         self.instances[inst_name] = Instance(name=inst_name, declared=name, cls=decl.cls, params=dict(decl.params),
-                                             placeholders=placeholders, inputs=inputs, output_streams=output_streams)
+                                             placeholders=placeholders, inputs=inputs, output_streams=output_streams,
+                                             policy=decl.policy)
         self.made[name].append(inst_name)
 
     def endpoint_links(self, links: list[RawLink]) -> None:

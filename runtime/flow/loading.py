@@ -11,7 +11,7 @@ from ..plugins import Registry
 from .declarations import read_tables
 from .expansion import check_inputs, expand, wiring_order
 from .locator import KeyLocator
-from .model import Flow, Instance, Link
+from .model import Flow, Instance, Link, OnFailure
 from .problems import FlowErrors, Problem, ProblemLog, syntax_problem
 
 __all__ = ["check_flow", "load_flow"]
@@ -38,6 +38,12 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
         # problems are reported along with the others
         instances, expanded = expand(log, decls, links, order, flow_path=path,
                                      output_dir=Path(output_dir) if output_dir else Path.cwd())
+    continuing = {i.declared: i for i in instances.values() if i.policy.on_failure is OnFailure.CONTINUE
+                  and any(link.target for links in i.outputs.values() for link in links)}
+    for declared, inst in continuing.items():
+        consumers = sorted({link.target for links in inst.outputs.values() for link in links if link.target})
+        log.add(("blocks", declared, "on_failure"), f"{inst.name} feeds {', '.join(consumers)}, which would wait for "
+                f"its stream for ever if it stayed down; use 'restart', or 'continue' on blocks that feed no block")
     for attribute, what in (("uses_stdin", "read standard input"), ("uses_stdout", "write standard output")):
         users = [i for i in instances.values() if getattr(i.cls, attribute)]
         if len(users) > 1:

@@ -17,7 +17,7 @@ from bandloom.blocks.block import Block, StreamInfo
 
 from .problems import KeyPath, format_key_path
 
-__all__ = ["Flow", "Instance", "Link", "LinkOptions", "WhenFull"]
+__all__ = ["FailurePolicy", "Flow", "Instance", "Link", "LinkOptions", "OnFailure", "WhenFull"]
 
 
 class WhenFull(str, Enum):
@@ -25,6 +25,30 @@ class WhenFull(str, Enum):
 
     WAIT = "wait"       # lossless: the producer waits (backpressure)
     DROP = "drop"       # the message is dropped whole, counted, and the gap flagged
+
+
+class OnFailure(str, Enum):
+    """What the run does when a block's process fails or dies."""
+
+    STOP = "stop"           # the run fails: every other block is aborted (the default)
+    RESTART = "restart"     # a new process takes the block's place; what it missed is a counted gap
+    CONTINUE = "continue"   # the block stays down, the rest of the flow runs on; the run fails at its end
+
+
+@dataclass(frozen=True, kw_only=True)
+class FailurePolicy:
+    """A block's ``on_failure``, ``restarts`` and ``restart_delay`` (declared in
+    :data:`~.declarations.BLOCK_OPTIONS`). The n-th restart (1-based) waits
+    ``restart_delay * 2**(n - 1)`` seconds; after ``restarts`` restarts a further
+    failure stops the run."""
+
+    on_failure: OnFailure = OnFailure.STOP
+    restarts: int = 3
+    restart_delay: float = 1.0      # seconds
+
+    def delay(self, restart: int) -> float:
+        """Seconds to wait before restart number ``restart`` (1-based)."""
+        return self.restart_delay * 2 ** (restart - 1)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -85,6 +109,7 @@ class Instance:
     inputs: dict[str, Link] = field(default_factory=dict)              # port -> link
     outputs: dict[str, list[Link]] = field(default_factory=dict)       # port -> links, filled as consumers appear
     output_streams: dict[str, StreamInfo] = field(default_factory=dict)
+    policy: FailurePolicy = FailurePolicy()
 
     @property
     def type_name(self) -> str:
