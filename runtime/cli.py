@@ -15,6 +15,8 @@ import sys
 from collections.abc import Callable
 from typing import TextIO
 
+from bandloom import __version__
+
 from . import bench_command, design_command, flow_commands, verify_commands
 
 __all__ = ["UsageError", "build_parser", "entry_point", "main"]
@@ -63,6 +65,7 @@ COMMANDS: dict[str, tuple[Adder, Runner, str]] = {
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="bandloom", description="Polyphase channelizer and synthesis "
                                      "blocks run as processes over ZeroMQ.")
+    parser.add_argument("--version", action="version", version=f"bandloom {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
     for name, (add_arguments, run, help_text) in COMMANDS.items():

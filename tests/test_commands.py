@@ -55,3 +55,22 @@ def test_bench_json_reports_ratios_measured_in_the_same_run():
     for c in cases:
         assert c["analysis_ratio"] > 0 and c["synthesis_ratio"] > 0 and c["analysis_msps"] > 0
         assert c["model_ratio"] == pytest.approx(1 + 4 / 6)
+
+
+def test_version_is_pyprojects_from_the_command_the_module_and_the_package():
+    """bandloom --version, python -m bandloom --version and bandloom.__version__ all give pyproject's
+    version; the LICENSE file is the licence pyproject names (MIT)."""
+    import subprocess
+    import sys
+    import tomllib
+    from pathlib import Path
+
+    import bandloom as package
+    root = Path(__file__).parent.parent
+    project = tomllib.loads((root / "pyproject.toml").read_text())["project"]
+    assert package.__version__ == project["version"]
+    for command in ([sys.executable, "-m", "bandloom", "--version"], [sys.executable, "-m", "bandloom.runtime", "--version"]):
+        done = subprocess.run(command, capture_output=True, text=True, timeout=60)
+        assert (done.returncode, done.stdout.strip()) == (0, f"bandloom {project['version']}"), done.stderr
+    assert project["license"] == "MIT" and (root / "LICENSE").read_text().startswith("MIT License")
+    assert "LICENSE" in project["license-files"]
