@@ -43,7 +43,7 @@ class Shift(Block):
 def rational_ratio(target: float, rate: float) -> tuple[int, int]:
     """up/down with small terms such that rate * up / down == target, or BlockError."""
     ratio = Fraction(target / rate).limit_denominator(10000)
-    if abs(float(ratio) * rate - target) > 1e-12 * target:
+    if ratio.numerator > 10000 or ratio.numerator == 0 or abs(float(ratio) * rate - target) > 1e-12 * target:
         raise BlockError(f"cannot reach {format_frequency(target)} exactly from {format_frequency(rate)} with a ratio "
                          f"of whole numbers up to 10000", param="rate")
     return ratio.numerator, ratio.denominator

@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import sys
 import time
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import IO, Any, ClassVar
@@ -149,6 +149,17 @@ class Chunk:
     def count(self) -> int:
         return len(self.data)
 
+    def filled_pieces(self, rows: int = 1 << 20) -> Iterator[np.ndarray]:
+        """:meth:`with_gap_filled` in pieces of at most ``rows`` zero rows, then ``data``: memory stays
+        bounded whatever ``dropped`` claims (a writer keeps absolute time piece by piece)."""
+        left = self.dropped
+        while left > 0:
+            n = min(rows, left)
+            yield np.zeros((n,) + self.data.shape[1:], self.data.dtype)
+            left -= n
+        if len(self.data):
+            yield self.data
+
     def with_gap_filled(self) -> np.ndarray:
         """``data`` preceded by ``dropped`` zero rows: the stream with its gap kept in absolute time."""
         if not self.dropped:
@@ -197,9 +208,15 @@ class BlockContext:
         return path if path.is_absolute() else self.flow_path.parent / path
 
     def output_path(self, text: str) -> Path:
-        """A path to write, placeholders filled: relative to the run's output folder."""
-        path = Path(text.format_map(self.placeholders)).expanduser()
-        return path if path.is_absolute() else self.output_dir / path
+        """A path to write, placeholders filled: relative to the run's output folder and always inside it
+        (BlockError for an absolute path, ``~``, a ``..`` part, or a placeholder that renders as one)."""
+        rendered = text.format_map(self.placeholders)
+        path = Path(rendered)
+        if path.is_absolute() or rendered.startswith("~") or ".." in path.parts or not path.parts:
+            shown = f" (from {text!r})" if rendered != text else ""
+            raise BlockError(f"{rendered!r}{shown} would be written outside the output folder; output paths are "
+                             f"relative to it, without '..', '~' or a leading '/' (choose the folder with --out)")
+        return self.output_dir / path
 
 
 class Pacer:

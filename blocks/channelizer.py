@@ -10,6 +10,7 @@ from ._bank_params import DESIGN_KEYS, DESIGN_PARAMS, make_design
 from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
 from .dsp.design import BankDesign
 from .dsp.mixing import shift_frequency
+from .params import MAX_CHANNELS
 
 __all__ = ["Channelizer", "Synthesis"]
 
@@ -19,9 +20,10 @@ class Channelizer(Block):
     summary = "Split a wideband IQ stream into equally spaced channels (polyphase filter bank)."
     parameters = (
         Param("channels", "int", "number of channels M; channel k is centred k*rate/M from the "
-              "centre frequency (k >= M/2 counts down from the top: FFT order)", minimum=2),
+              "centre frequency (k >= M/2 counts down from the top: FFT order)", minimum=2,
+              maximum=MAX_CHANNELS),
         Param("oversample", "int", "channel rate as a multiple of the channel spacing (M / decimation); "
-              "2 or more for exact reconstruction", default=2, minimum=1),
+              "2 or more for exact reconstruction", default=2, minimum=1, maximum=64),
         Param("grid_offset", "quantity", "put the channel raster's centre this far from the stream's centre "
               "frequency (the band is shifted before the bank)", default=0.0, unit="Hz"),
     ) + DESIGN_PARAMS
@@ -78,7 +80,7 @@ class Synthesis(Block):
     summary = "Merge channels from a channelizer back into one wideband stream (polyphase synthesis)."
     parameters = (
         Param("oversample", "int", "must match the channelizer; default: the channelizer's",
-              default=None, minimum=1),
+              default=None, minimum=1, maximum=64),
     ) + tuple(replace(p, doc=p.doc.split(" (default")[0] + " (default: the channelizer's)", default=None)
               for p in DESIGN_PARAMS)
     inputs = (Port("channels", "channels", "channels from a channelizer; missing channels count as silence"),)

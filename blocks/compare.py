@@ -20,10 +20,10 @@ class Compare(Block):
     summary = "Compare a stream with a reference: delay, gain, phase and error in dB, with PASS/FAIL."
     parameters = (
         Param("delay", "int", "samples the test stream lags the reference; -1 = the synthesis design's "
-              "delay if known, else found by cross-correlation", default=-1, minimum=-1),
-        Param("max_delay", "int", "largest delay the cross-correlation looks for", default=65536, minimum=1),
+              "delay if known, else found by cross-correlation", default=-1, minimum=-1, maximum=1 << 31),
+        Param("max_delay", "int", "largest delay the cross-correlation looks for", default=65536, minimum=1, maximum=1 << 24),
         Param("settle", "int", "samples after the start not counted (-1 = as many as the delay)", default=-1,
-              minimum=-1),
+              minimum=-1, maximum=1 << 31),
         Param("threshold", "quantity", "PASS when the error is at or below this", default=-100.0, unit="dB"),
         Param("path", "output-path", "also write the figures as JSON here ('' = do not)", default=""),
     )

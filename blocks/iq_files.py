@@ -7,6 +7,7 @@ Sample formats and their scales are those of :mod:`.sample_formats`
 from __future__ import annotations
 
 import json
+import math
 import re
 from pathlib import Path
 from typing import IO, Any
@@ -15,6 +16,7 @@ import numpy as np
 
 from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Pacer, Param, Port, StreamInfo
 from .output_files import replace_file, whole_records
+from .params import UNIT_BOUNDS, shortened, toml_repr
 from .sample_formats import COMPLEX_FORMATS, FORMATS
 
 __all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
@@ -28,26 +30,74 @@ def sigmf_meta_path(data_path: str | Path) -> Path:
     return data_path.with_suffix(".sigmf-meta")
 
 
+#: The largest metadata file read (SigMF metadata is small; annotations of a long recording stay far below).
+MAX_META_BYTES = 64 << 20
+
+
 def read_sigmf(meta_path: Path) -> tuple[str, str, Any, Any, Any]:
     """(format, byte_order, sample_rate, frequency, datetime) from a SigMF metadata file.
 
     Field names from the SigMF specification (global core:datatype,
     core:sample_rate; captures core:frequency, core:datetime); the tests
     check what bandloom writes against the sigmf package's published schema.
+    The file is validated like a flow file: every refusal names the file and
+    the field and says what would be right (its size is bounded, JSON nesting
+    too deep is refused, numbers must be finite and in range).
     """
+    def refuse(field: str, what: str, value: object) -> BlockError:
+        return BlockError(f"{meta_path}: {field}: expected {what}, got {_json_text(value)}", param="metadata")
+
     try:
-        meta = json.loads(Path(meta_path).read_text())
-        core = meta["global"]
-        datatype = core["core:datatype"]
-    except (OSError, ValueError, KeyError, TypeError) as error:
-        raise BlockError(f"cannot use {meta_path} as SigMF metadata: {error}", param="metadata") from None
+        with open(meta_path, "rb") as handle:
+            raw = handle.read(MAX_META_BYTES + 1)
+    except OSError as error:
+        raise BlockError(f"cannot read {meta_path}: {error.strerror}", param="metadata") from None
+    if len(raw) > MAX_META_BYTES:
+        raise BlockError(f"{meta_path} is larger than {MAX_META_BYTES >> 20} MiB; not SigMF metadata",
+                         param="metadata")
+    try:
+        meta = json.loads(raw.decode("utf-8"))
+    except (ValueError, RecursionError) as error:
+        reason = "nested too deeply" if isinstance(error, RecursionError) else str(error)
+        raise BlockError(f"cannot use {meta_path} as SigMF metadata: not JSON ({reason})", param="metadata") from None
+    if not isinstance(meta, dict):
+        raise refuse("(top level)", "a JSON object with \"global\" and \"captures\"", meta)
+    core = meta.get("global")
+    if not isinstance(core, dict):
+        raise refuse("global", "an object", core)
+    datatype = core.get("core:datatype")
+    if not isinstance(datatype, str):
+        raise refuse("global.core:datatype", "text such as \"cf32_le\"", datatype)
     m = re.fullmatch(r"c(f32|f64|i16|i8|u8)(_le|_be)?", datatype)
     if not m:
-        raise BlockError(f"{meta_path}: core:datatype {datatype!r} is not a complex format this reader takes "
-                         f"(cf32, cf64, ci16, ci8, cu8; _le or _be)", param="metadata")
-    capture = (meta.get("captures") or [{}])[0]
-    return ("c" + m.group(1), "big" if m.group(2) == "_be" else "little", core.get("core:sample_rate"),
-            capture.get("core:frequency"), capture.get("core:datetime"))
+        raise BlockError(f"{meta_path}: core:datatype {shortened(datatype)!r} is not a complex format this reader "
+                         f"takes (cf32, cf64, ci16, ci8, cu8; _le or _be)", param="metadata")
+    rate = core.get("core:sample_rate")
+    if rate is not None and not _number_in(rate, 1e-9, UNIT_BOUNDS["Hz"][1]):
+        raise refuse("global.core:sample_rate", "a sample rate in Hz, a finite number above 0", rate)
+    captures = meta.get("captures", [])
+    if not isinstance(captures, list) or not all(isinstance(c, dict) for c in captures):
+        raise refuse("captures", "a list of objects", captures)
+    capture = captures[0] if captures else {}
+    frequency = capture.get("core:frequency")
+    if frequency is not None and not _number_in(frequency, *UNIT_BOUNDS["Hz"]):
+        raise refuse("captures[0].core:frequency", "a frequency in Hz, a finite number", frequency)
+    when = capture.get("core:datetime")
+    if when is not None and not (isinstance(when, str) and len(when) <= 64 and when.isprintable()):
+        raise refuse("captures[0].core:datetime", "an ISO 8601 time such as \"2026-12-03T07:00:00Z\"", when)
+    return ("c" + m.group(1), "big" if m.group(2) == "_be" else "little", rate, frequency, when)
+
+
+def _number_in(value: object, low: float, high: float) -> bool:
+    return (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+            and low <= value <= high)
+
+
+def _json_text(value: object) -> str:
+    """A JSON value as a message shows it: containers summarised, text shortened, absence said."""
+    if isinstance(value, (list, dict)):
+        return f"a JSON {'array' if isinstance(value, list) else 'object'} of {len(value)} items"
+    return "nothing" if value is None else toml_repr(value)
 
 
 def write_sigmf(data_path: Path, *, datatype: str, sample_rate: float, frequency: float, start_time: str | None,
@@ -83,7 +133,7 @@ class IQReader(Block):
               "metadata's, else 0)", default=None, unit="Hz"),
         Param("start", "quantity", "skip this much of the recording first", default=0.0, unit="s", minimum=0),
         Param("duration", "quantity", "read at most this much (0 = to the end)", default=0.0, unit="s", minimum=0),
-        Param("repeat", "int", "play the selection this many times in all (looping)", default=1, minimum=1),
+        Param("repeat", "int", "play the selection this many times in all (looping)", default=1, minimum=1, maximum=1_000_000),
         Param("chunk_size", "int", "samples per message", default=65536, minimum=1, maximum=1 << 24),
         Param("pace", "bool", "deliver at the sample rate, as a live receiver would", default=False),
         Param("trailing_bytes", "choice", "what to do with a partial sample at the end of the file: "
@@ -285,7 +335,8 @@ class IQWriter(Block):
         if gap != chunk.dropped:
             chunk = Chunk(chunk.data, chunk.first_index, discontinuity=True, dropped=gap)
         try:
-            self.file.write(np.ascontiguousarray(self.format.encode(chunk.with_gap_filled())).data)
+            for piece in chunk.filled_pieces():
+                self.file.write(np.ascontiguousarray(self.format.encode(piece)).data)
         except OSError as error:
             self.failure = error.strerror or str(error)
             raise

@@ -132,7 +132,7 @@ class Waterfall(Block):
         Param("path", "output-path", "the picture (PNG)", default="waterfall.png"),
         Param("fft_size", "int", "frequency resolution: points per spectrum", default=1024, minimum=16,
               maximum=1 << 16),
-        Param("rows", "int", "at most this many rows of time in the picture", default=400, minimum=10),
+        Param("rows", "int", "at most this many rows of time in the picture", default=400, minimum=10, maximum=4000),
         Param("title", "str", "title above the picture", default=""),
     ) + DETECTOR_PARAMS
     inputs = (Port("samples", "samples", "the wideband stream to draw"),

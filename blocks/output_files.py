@@ -21,7 +21,18 @@ __all__ = ["OutputFile", "open_output_file", "replace_file", "whole_records"]
 
 
 class OutputFile(io.FileIO):
-    """An unbuffered file written whole or not at all per call; failures name the file (see module doc)."""
+    """An unbuffered file written whole or not at all per call; failures name the file (see module doc).
+    It is never opened through a symbolic link (``O_NOFOLLOW``): a link someone else put where an output
+    goes is refused, naming it, rather than followed to a file they chose."""
+
+    def __init__(self, path: str | Path, mode: str = "w") -> None:
+        try:
+            super().__init__(path, mode, opener=lambda name, flags: os.open(name, flags | os.O_NOFOLLOW, 0o666))
+        except OSError as error:
+            if os.path.islink(path):
+                raise OSError(error.errno, "is a symbolic link; bandloom does not write through links it did not "
+                              "make (remove it, or choose another path)", str(path)) from None
+            raise
 
     def write(self, data: Any) -> int:
         view = memoryview(data).cast("B")

@@ -20,7 +20,16 @@ from typing import Any
 
 from .units import UnitError, parse_quantity
 
-__all__ = ["KINDS", "Kind", "Param", "REQUIRED", "toml_repr"]
+__all__ = ["KINDS", "Kind", "MAX_CHANNELS", "Param", "REQUIRED", "UNIT_BOUNDS", "shortened", "toml_repr"]
+
+#: Bounds a quantity takes from its unit when its declaration gives none: finite, and wide enough for
+#: anything physical (frequencies to 3 THz, the top of the radio spectrum as the ITU Radio Regulations
+#: define it; times to about 116 days; levels and ratios to +-400 dB, far past any receiver's range).
+UNIT_BOUNDS: dict[str, tuple[float, float]] = {"Hz": (-3e12, 3e12), "s": (-1e7, 1e7), "dB": (-400.0, 400.0),
+                                               "dBFS": (-400.0, 400.0)}
+#: The most channels one link carries: its channel list and centres travel in every message header,
+#: which is limited to 64 KiB (4,096 channels take about 49 KB; common practice for our wire format).
+MAX_CHANNELS = 4096
 
 
 class _Required:
@@ -33,6 +42,16 @@ class _Required:
 REQUIRED: Any = _Required()
 
 
+def shortened(text: str, limit: int = 80) -> str:
+    """``text`` itself, or for a long one its ends and its length: a message names a value, it does not
+    repeat it.
+
+    >>> shortened("a" * 100)
+    'aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa … (100 characters) … aaaaaaaaaaaaaaaa'
+    """
+    return text if len(text) <= limit else f"{text[:32]} … ({len(text)} characters) … {text[-16:]}"
+
+
 def toml_repr(value: object) -> str:
     """A value as it would be written in TOML, for messages: true, "text", 16, [1, 2].
 
@@ -42,6 +61,7 @@ def toml_repr(value: object) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, str):
+        value = shortened(value)
         return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
     if isinstance(value, list):
         return "[" + ", ".join(toml_repr(v) for v in value) + "]"
@@ -62,6 +82,11 @@ class Kind:
 
 def _expected(param: Param, words: str, value: object) -> ValueError:
     return ValueError(f"expected {param.rule or words}, got {toml_repr(value)}")
+
+
+def _bound(value: float) -> str:
+    """A bound for a message: whole numbers in full (16777216), others as %g."""
+    return str(int(value)) if float(value).is_integer() and abs(value) < 1e16 else f"{value:g}"
 
 
 def _to_int(param: Param, value: Any) -> int:
@@ -145,8 +170,10 @@ class Param:
     relative to the flow file's folder), ``output-path`` (relative to the
     run's output folder; may contain ``{channel}``-style placeholders),
     ``channels`` (a channel selection, see docs/flow-files.md) or ``list``.
-    ``minimum`` and ``maximum`` bound numbers; ``rule``, when given, replaces
-    the generic "expected ..." words of a refusal.
+    ``minimum`` and ``maximum`` bound numbers (every number is bounded: a
+    quantity without them takes its unit's :data:`UNIT_BOUNDS`, and
+    registration refuses an ``int`` or ``float`` without both); ``rule``, when
+    given, replaces the generic "expected ..." words of a refusal.
 
     >>> queue = Param("queue", "int", "messages held", default=8, minimum=1, maximum=100)
     >>> queue.convert(16), queue.describe_type(), queue.required
@@ -167,6 +194,12 @@ class Param:
     maximum: float | None = None
     rule: str | None = None
 
+    def __post_init__(self) -> None:
+        if self.kind == "quantity" and self.unit in UNIT_BOUNDS:
+            low, high = UNIT_BOUNDS[self.unit]
+            object.__setattr__(self, "minimum", low if self.minimum is None else self.minimum)
+            object.__setattr__(self, "maximum", high if self.maximum is None else self.maximum)
+
     @property
     def required(self) -> bool:
         """True when the flow must give a value (there is no default)."""
@@ -185,7 +218,7 @@ class Param:
         if number and not math.isfinite(value):
             raise _expected(self, "a finite number", given)
         if number and self.minimum is not None and value < self.minimum:
-            raise _expected(self, f"at least {self.minimum:g}", given)
+            raise _expected(self, f"at least {_bound(self.minimum)}", given)
         if number and self.maximum is not None and value > self.maximum:
-            raise _expected(self, f"at most {self.maximum:g}", given)
+            raise _expected(self, f"at most {_bound(self.maximum)}", given)
         return value

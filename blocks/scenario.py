@@ -88,6 +88,16 @@ def parse_transmitters(items: list[Any], sample_rate: float, centre: float) -> l
             raise BlockError(f"{where}: missing {missing.args[0]!r}", param="transmitters") from None
         except UnitError as error:
             raise BlockError(f"{where}: {error}", param="transmitters") from None
+        for key in ("deviation", "tone", "baud", "shift", "bandwidth"):
+            value = tx.get(key)
+            if isinstance(value, float) and not 0 < value <= (sample_rate if key == "bandwidth" else sample_rate / 2):
+                most = "the sample rate" if key == "bandwidth" else "half the sample rate"
+                raise BlockError(f"{where}.{key}: expected more than 0 Hz and at most {most} "
+                                 f"({format_frequency(sample_rate if key == 'bandwidth' else sample_rate / 2)}), got "
+                                 f"{format_frequency(value)}", param="transmitters")
+        if not -300 <= tx["level"] <= 40:
+            raise BlockError(f"{where}.level: expected a level from -300 dBFS to +40 dBFS, got {tx['level']:g} dBFS",
+                             param="transmitters")
         offset = tx["frequency"] - centre
         if abs(offset) >= sample_rate / 2:
             raise BlockError(f"{where}: {format_frequency(tx['frequency'])} is outside the band "
@@ -190,7 +200,8 @@ class Scenario(Block):
         Param("duration", "quantity", "length of the scenario", unit="s", minimum=0.0),
         Param("noise", "quantity", "white-noise power over the whole band", default=-80.0, unit="dBFS"),
         Param("transmitters", "list", "the transmitters, one inline table each (see docs/blocks.md)", default=[]),
-        Param("seed", "int", "random seed: the same seed gives the same band", default=1),
+        Param("seed", "int", "random seed: the same seed gives the same band", default=1, minimum=0,
+              maximum=(1 << 63) - 1),
         Param("chunk_size", "int", "samples per message", default=65536, minimum=1, maximum=1 << 24),
         Param("pace", "bool", "deliver at the sample rate, as a live receiver would", default=False),
     )

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 __all__ = ["UNIT_FAMILIES", "UnitError", "format_frequency", "parse_quantity"]
 
+import math
 import re
 
 UNIT_FAMILIES = {
@@ -22,7 +23,7 @@ UNIT_FAMILIES = {
 UNIT_WORDS = {"Hz": ("Hz", "kHz", "MHz", "GHz"), "s": ("s", "ms", "us", "ns", "min", "h"),
               "dB": ("dB",), "dBFS": ("dBFS",)}
 
-_QUANTITY = re.compile(r"^\s*([+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-Za-zµ]*)\s*$")
+_QUANTITY = re.compile(r"^\s*([+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-Za-zµ]*)\s*\Z")
 
 
 class UnitError(ValueError):
@@ -35,7 +36,7 @@ def parse_quantity(value: object, unit: str) -> float:
     if isinstance(value, bool):
         raise UnitError(f"expected a number in {unit}, got {'true' if value else 'false'}")
     if isinstance(value, (int, float)):
-        return float(value)
+        return _finite(float(value), value, unit)
     if not isinstance(value, str):
         raise UnitError(f'expected a number in {unit} such as "{_example(unit)}", got {_quoted(value)}')
     match = _QUANTITY.match(value)
@@ -43,14 +44,20 @@ def parse_quantity(value: object, unit: str) -> float:
         raise UnitError(f'expected a number in {unit} such as "{_example(unit)}", got {_quoted(value)}')
     number, word = float(match.group(1)), match.group(2)
     if not word:
-        return number
+        return _finite(number, value, unit)
     if word == "mHz":
         raise UnitError(f"{_quoted(value)} is in millihertz; did you mean MHz?")
     scale = family.get(word.lower())
     if scale is None:
         known = ", ".join(UNIT_WORDS[unit])
         raise UnitError(f"{word!r} in {_quoted(value)} is not a unit of {unit}; use one of: {known}")
-    return number * scale
+    return _finite(number * scale, value, unit)
+
+
+def _finite(number: float, value: object, unit: str) -> float:
+    if not math.isfinite(number):
+        raise UnitError(f"expected a finite number in {unit}, got {_quoted(value)}")
+    return number
 
 
 def _quoted(value: object) -> str:

@@ -73,7 +73,8 @@ class WavWriter(Block):
     summary = "Write audio to a 16-bit PCM WAV file (mono; IQ input gives stereo I/Q)."
     parameters = (
         Param("path", "output-path", "the WAV file; may use {channel}, {frequency}, {frequency_mhz}"),
-        Param("gain", "float", "multiply by this before writing (1.0 = full scale)", default=1.0),
+        Param("gain", "float", "multiply by this before writing (1.0 = full scale)", default=1.0, minimum=-1e6,
+              maximum=1e6),
     )
     inputs = (Port("audio", "samples", "audio (f32) or IQ (cf32)", sample_types=("f32", "cf32")),)
 
@@ -110,16 +111,17 @@ class WavWriter(Block):
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         assert self.file is not None
-        data = chunk.with_gap_filled() * self.params["gain"]       # a gap becomes silence of its length
         self.received += chunk.count
-        self.clipped += int(np.count_nonzero(np.abs(data.view(np.float32) if self.stereo else data) > 1.0))
-        try:
-            self.file.writeframes(self.pcm.encode(data).tobytes())
-        except OSError as error:
-            self.failure = error.strerror or str(error)
-            raise
+        for piece in chunk.filled_pieces():          # a gap becomes silence of its length, in bounded pieces
+            data = piece * self.params["gain"]
+            self.clipped += int(np.count_nonzero(np.abs(data.view(np.float32) if self.stereo else data) > 1.0))
+            try:
+                self.file.writeframes(self.pcm.encode(data).tobytes())
+            except OSError as error:
+                self.failure = error.strerror or str(error)
+                raise
+            self.frames += len(data)
         self.zero_filled += chunk.dropped
-        self.frames += len(data)
         return {}
 
     def close(self) -> None:

@@ -82,8 +82,10 @@ def main(argv: list[str] | None = None) -> int:
         status = args.func(args, sys.stdout)
         sys.stdout.flush()
         return status
-    except flow_commands.Interrupted:
-        raise KeyboardInterrupt from None
+    except flow_commands.Interrupted as stop:
+        if stop.signum == signal.SIGINT:
+            raise KeyboardInterrupt from None
+        raise
     except (ValueError, UsageError, OSError) as error:
         if isinstance(error, BrokenPipeError):
             raise
@@ -104,3 +106,7 @@ def entry_point() -> int:
         signal.signal(signal.SIGINT, signal.SIG_DFL)
         os.kill(os.getpid(), signal.SIGINT)
         return 130
+    except flow_commands.Interrupted as stop:      # SIGTERM: end killed by it too (shell status 143)
+        signal.signal(stop.signum, signal.SIG_DFL)
+        os.kill(os.getpid(), stop.signum)
+        return 128 + stop.signum

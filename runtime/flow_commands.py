@@ -6,7 +6,7 @@ import argparse
 import contextlib
 import json
 import math
-import shutil
+import signal
 import sys
 from pathlib import Path
 from typing import TextIO
@@ -15,7 +15,7 @@ from bandloom.blocks.block import REQUIRED, Param, toml_repr
 from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
-from .flow import Flow, FlowErrors, load_flow
+from .flow import Flow, FlowErrors, format_key_path, load_flow
 from .flow.declarations import BLOCK_OPTIONS
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
@@ -27,14 +27,20 @@ __all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "Interrupted", "blocks_markdow
 
 
 #: Exit statuses of ``bandloom run`` (docs/reliability.md). An interrupted run ends the way Python does on
-#: Ctrl-C (killed by SIGINT, shell status 130); a flow with problems exits 1 from ``check`` and ``run`` alike.
+#: Ctrl-C (killed by SIGINT, shell status 130), or on SIGTERM killed by SIGTERM (143); a flow with
+#: problems exits 1 from ``check`` and ``run`` alike.
 EXIT_OK = 0             # finished; nothing lost, or only loss the flow or the command line accepted
 EXIT_FAILED = 1         # a block failed or died, or the flow has problems
 EXIT_LOST = 3           # finished, but samples were lost and nothing accepted that
 
 
 class Interrupted(Exception):
-    """The run was stopped with Ctrl-C after a clean shutdown."""
+    """The run was stopped by ``signum`` (Ctrl-C's SIGINT, or SIGTERM) after a clean shutdown; the command
+    then ends killed by that same signal, as a Unix program should."""
+
+    def __init__(self, signum: int = signal.SIGINT) -> None:
+        super().__init__(signal.Signals(signum).name)
+        self.signum = signum
 
 
 def _registry(log: TextIO) -> Registry:
@@ -47,7 +53,13 @@ def _registry(log: TextIO) -> Registry:
 def _load(args: argparse.Namespace, log: TextIO) -> Flow | None:
     registry = _registry(log)
     try:
-        return load_flow(args.flow, registry, output_dir=getattr(args, "out", None))
+        flow = load_flow(args.flow, registry, output_dir=getattr(args, "out", None))
+        for link in flow.links:
+            if link.options.insecure and link.endpoint:
+                print(f"bandloom: warning: {flow.path}: {format_key_path(link.where)}: {link.endpoint} sends samples "
+                      f"in the clear, unauthenticated, to any program on any machine that can reach it "
+                      f"(insecure = true); use keys = \"FOLDER\" unless the network is yours alone", file=log)
+        return flow
     except FlowErrors as errors:
         for problem in errors.problems:
             print(str(problem), file=log)
@@ -130,7 +142,7 @@ def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) ->
     if args.report:
         Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
     if outcome is RunOutcome.INTERRUPTED:
-        raise Interrupted()
+        raise Interrupted(supervisor.stop_signal or signal.SIGINT)
     if outcome is RunOutcome.FAILED:
         return EXIT_FAILED
     return EXIT_LOST if summary["lost_samples_not_accepted"] else EXIT_OK
@@ -219,15 +231,9 @@ def add_keys_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run_keys(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
-    import zmq.auth
+    from .keys import make_key_folder
 
-    folder = Path(args.folder)
-    if folder.exists() and any(folder.iterdir()):
-        raise ValueError(f"{folder} is not empty; choose a new folder so no key is overwritten")
-    (folder / "authorized").mkdir(parents=True, exist_ok=True)
-    zmq.auth.create_certificates(str(folder), "server")
-    client_public, _ = zmq.auth.create_certificates(str(folder), "client")
-    shutil.copy(client_public, folder / "authorized" / "client.key")
+    folder = make_key_folder(args.folder)
     out.write(f"{folder}/server.key_secret   the link's own key pair (keep secret; name the folder in keys = ...)\n"
               f"{folder}/server.key          public key the outside program needs\n"
               f"{folder}/client.key_secret   the outside program's key pair (copy it to that machine)\n"

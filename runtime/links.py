@@ -43,6 +43,7 @@ from bandloom.blocks.block import Chunk
 from . import wire
 from .control import InletStats, OutletStats
 from .flow.model import WhenFull
+from .keys import load_server_keys
 from .worker_spec import LinkSpec
 
 __all__ = ["Aborted", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet", "configure", "secure_server"]
@@ -101,7 +102,7 @@ def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) 
     authenticator = ThreadAuthenticator(context)
     authenticator.start()
     authenticator.configure_curve(domain="*", location=str(keys_dir / "authorized"))
-    public, secret = zmq.auth.load_certificate(str(keys_dir / "server.key_secret"))
+    public, secret = load_server_keys(keys_dir)
     sock.curve_secretkey = secret
     sock.curve_publickey = public
     sock.curve_server = True

@@ -59,6 +59,9 @@ def validate_block_class(name: str, cls: object) -> None:
             raise PluginError(f"parameter {p!r} is not a Param")
         if p.kind not in PARAM_KINDS:
             raise PluginError(f"parameter {p.name!r} has unknown kind {p.kind!r}")
+        if p.kind in ("int", "float", "quantity") and (p.minimum is None or p.maximum is None):
+            raise PluginError(f"parameter {p.name!r} is a number without both bounds (minimum and maximum); "
+                              f"every number a flow gives must be bounded before anything is allocated")
         if p.name in seen or p.name in RESERVED_KEYS:
             raise PluginError(f"parameter name {p.name!r} is repeated or reserved")
         seen.add(p.name)

@@ -145,6 +145,7 @@ class Supervisor:
         self.barrier_passed = False
         self.folder = ""
         self.workers_started = 0
+        self.stop_signal = 0          # SIGINT or SIGTERM, once one asked the run to stop
 
     def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
         """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
@@ -183,6 +184,7 @@ class Supervisor:
 
         def request_stop(signum: int, frame: object) -> None:
             self.interrupted = True
+            self.stop_signal = self.stop_signal or signum     # the first one is how the run ends
 
         signal.signal(signal.SIGINT, request_stop)
         signal.signal(signal.SIGTERM, request_stop)

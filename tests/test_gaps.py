@@ -327,3 +327,21 @@ def test_a_live_source_dropping_input_gives_audio_of_the_full_length(tmp_path, r
         assert w.getnframes() == total // 4
     assert to_wav["missing_samples"] > 0
     assert f"{to_wav['missing_samples']} of them silence" in report["blocks"]["audio"]["report"][0]
+
+
+def test_a_huge_declared_gap_is_filled_in_bounded_pieces():
+    """A chunk claiming 2**27 missing rows (1 GiB of cf32 zeros, as a forged header could): the pieces a
+    writer writes add up to the gap and the data, and no piece, nor the peak memory, exceeds 16 MiB."""
+    import tracemalloc
+
+    from bandloom.blocks.block import Chunk
+    chunk = Chunk(np.ones(10, np.complex64), 1 << 27, discontinuity=True, dropped=1 << 27)
+    tracemalloc.start()
+    total = 0
+    for piece in chunk.filled_pieces():
+        total += len(piece)
+        assert piece.nbytes <= 16 << 20
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert total == (1 << 27) + 10
+    assert peak < 32 << 20

@@ -67,8 +67,9 @@ class _Good(Block):
     (lambda c: setattr(c, "type_name", "other"), "registered as 'good'"),
     (lambda c: setattr(c, "summary", ""), "no one-line summary"),
     (lambda c: setattr(c, "parameters", (Param("x", "colour", "?"),)), "unknown kind 'colour'"),
-    (lambda c: setattr(c, "parameters", (Param("type", "int", "?"),)), "repeated or reserved"),
-    (lambda c: setattr(c, "parameters", (Param("on_failure", "int", "?"),)), "repeated or reserved"),
+    (lambda c: setattr(c, "parameters", (Param("type", "str", "?"),)), "repeated or reserved"),
+    (lambda c: setattr(c, "parameters", (Param("on_failure", "str", "?"),)), "repeated or reserved"),
+    (lambda c: setattr(c, "parameters", (Param("taps", "int", "?", minimum=1),)), "without both bounds"),
     (lambda c: setattr(c, "inputs", (Port("a", "wide", "?"),)), "is not a Port of kind"),
     (lambda c: setattr(c, "is_source", True), "a source block cannot have inputs"),
 ])

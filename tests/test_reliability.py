@@ -83,7 +83,7 @@ def test_an_endpoint_that_cannot_be_bound_fails_the_run_at_once_naming_the_link(
         '[blocks.band]\ntype = "scenario"\nsample_rate = "1 MHz"\nduration = "2 s"\n'
         '[blocks.split]\ntype = "channelizer"\nchannels = 8\n'
         '[[links]]\nfrom = "band.samples"\nto = "split.samples"\n'
-        '[[links]]\nfrom = "split.channels"\nselect = 1\nendpoint = "ipc://@bandloom-test-unused"\n'
+        f'[[links]]\nfrom = "split.channels"\nselect = 1\nendpoint = "ipc://{tmp_path}/unused"\n'
         f'[[links]]\nfrom = "split.channels"\nselect = 2\nendpoint = "tcp://127.0.0.1:{port}"\n')
     started = time.monotonic()
     done = bandloom("run", tmp_path / "bind.toml", "--out", tmp_path, timeout=120)

@@ -17,7 +17,9 @@ from pathlib import Path
 from typing import Any
 
 from bandloom.blocks.block import Block, Param, toml_repr
+from bandloom.blocks.params import shortened
 
+from ..keys import key_folder_problem
 from ..plugins import RESERVED_KEYS, Registry
 from .model import FailurePolicy, LinkOptions, OnFailure, WhenFull
 from .problems import KeyPath, ProblemLog, did_you_mean, format_key_path, known_names
@@ -32,11 +34,22 @@ FLOW_OPTIONS: tuple[Param, ...] = (
     Param("description", "str", "what the flow is for", default=""),
     Param("accept_loss", "bool", "a run that loses samples still exits 0 (the verdict still counts them)",
           default=False),
+    Param("max_processes", "int", "the most block processes the flow may start (default: one per 128 MiB of "
+          "this machine's memory, at least 16 and at most 1000)", default=None, minimum=1, maximum=100_000),
 )
 FLOW_KEYS = tuple(p.name for p in FLOW_OPTIONS)
 PER_CHANNEL_KEYS = ("from", "select", "input", "tolerance")
-NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_-]*$")
+NAME_PATTERN = re.compile(r"[A-Za-z][A-Za-z0-9_-]{0,63}\Z")
 PLACEHOLDERS = ("channel", "frequency", "frequency_mhz")
+#: A placeholder's format specification: Python's mini-language without nested fields, widths bounded.
+_PLAIN_SPEC = re.compile(r"(?:[^{}]?[<>=^])?[+\- ]?z?#?0?(\d*)[_,]?(?:\.(\d+))?[bcdeEfFgGnosxX%]?\Z")
+MAX_WIDTH = 32
+
+
+def _too_wide(spec: str) -> bool:
+    m = _PLAIN_SPEC.match(spec)
+    return m is not None and any(int(g) > MAX_WIDTH for g in m.groups() if g)
+
 
 TOLERANCE = Param("tolerance", "quantity", "how far a frequency in 'select' may be from a channel centre "
                   "(default 5 % of the spacing)", default=None, unit="Hz", minimum=0, rule="a frequency >= 0")
@@ -120,7 +133,9 @@ def endpoints_clash(one: str, other: str) -> bool:
 
 def endpoint_problem(text: str) -> tuple[str | None, bool]:
     """(what is wrong with an endpoint or None, whether only this machine can reach it)."""
-    m = re.match(r"^tcp://(\[[^\]]+\]|[^:/\[\]]+):(\d{1,5})$", text)
+    if not text.isprintable():
+        return f"endpoint {toml_repr(text)} has a control character in it", False
+    m = re.match(r"tcp://(\[[^\]]+\]|[^:/\[\]]+):(\d{1,5})\Z", text)
     if m:
         host = m.group(1).strip("[]")
         port = int(m.group(2))
@@ -134,8 +149,11 @@ def endpoint_problem(text: str) -> tuple[str | None, bool]:
             return None, ipaddress.ip_address(host).is_loopback
         except ValueError:
             return None, False
-    m = re.match(r"^ipc://(.+)$", text)
+    m = re.match(r"ipc://(.+)\Z", text, re.DOTALL)
     if m:
+        if m.group(1).startswith("@"):
+            return ("an abstract socket (ipc://@NAME) can be opened by every local user; use an ipc path "
+                    "(a folder only you can enter) or tcp with keys"), False
         if len(m.group(1).encode()) > 100:
             return "ipc paths are limited to about 100 bytes; use a shorter path", True
         return None, True
@@ -198,18 +216,21 @@ class _TableReader:
     def _declaration(self, name: str, table: Any) -> tuple[type[Block], dict, dict | None] | None:
         log = self.log
         if not NAME_PATTERN.match(name):
-            log.add(("blocks", name), "block names start with a letter and use letters, digits, '-' and '_'")
+            log.add(("blocks", name), "block names start with a letter and use letters, digits, '-' and '_' (at most 64)")
             return None
         if not isinstance(table, dict):
             log.add(("blocks", name), f"expected a table [blocks.{name}] with a type, got {toml_repr(table)}")
             return None
         type_name = table.get("type")
+        if type_name is not None and not isinstance(type_name, str):
+            log.add(("blocks", name, "type"), f"expected a block type as a quoted string, got {toml_repr(type_name)}")
+            return None
         if type_name is None:
             log.add(("blocks", name), f"missing 'type'; block types: {known_names(self.registry.types)}")
             return None
         cls = self.registry.types.get(type_name)
         if cls is None:
-            log.add(("blocks", name, "type"), f"unknown block type {type_name!r}"
+            log.add(("blocks", name, "type"), f"unknown block type {shortened(type_name)!r}"
                     f"{did_you_mean(type_name, self.registry.types)}; 'bandloom blocks' lists the types")
             return None
         params: dict[str, Any] = {}
@@ -259,10 +280,18 @@ class _TableReader:
         allowed = PLACEHOLDERS if per_channel else ()
         at: KeyPath = ("blocks", name, key)
         try:
-            fields = [f for _, f, _, _ in string.Formatter().parse(text) if f is not None]
+            parsed = [(f, spec, conversion) for _, f, spec, conversion in string.Formatter().parse(text)
+                      if f is not None]
         except ValueError as error:
-            self.log.add(at, f"bad placeholder in {text!r}: {error}")
+            self.log.add(at, f"bad placeholder in {toml_repr(text)}: {error}")
             return
+        for f, spec, conversion in parsed:
+            if conversion or not _PLAIN_SPEC.match(spec or "") or _too_wide(spec or ""):
+                self.log.add(at, f"placeholder {{{f}{'!' + conversion if conversion else ''}:{spec}}}: only a plain "
+                             f"format is allowed after the name (fill, align, sign, width up to {MAX_WIDTH}, precision "
+                             f"up to {MAX_WIDTH}, type), as in {{channel:02d}} or {{frequency_mhz:.4f}}")
+                continue
+        fields = [f for f, _, _ in parsed]
         for f in fields:
             if f in allowed:
                 continue
@@ -311,6 +340,13 @@ class _TableReader:
             if param.name == "keys" and good and values["keys"] is not None:
                 good, values["keys"] = self.keys_folder(at, param, values["keys"], endpoint)
             ok = ok and (good or param is TOLERANCE)    # a bad tolerance is reported, the link still made
+        if values.get("insecure") and endpoint is None:
+            log.add(at + ("insecure",), "insecure applies to links with an endpoint; a link between blocks never "
+                    "leaves this machine's private sockets")
+            ok = False
+        elif values.get("insecure") and values.get("keys"):
+            log.add(at + ("insecure",), "give keys (encrypted) or insecure = true (in the clear), not both")
+            ok = False
         if not ok or source is None:
             return None
         values["when_full"] = WhenFull(values["when_full"])
@@ -322,6 +358,10 @@ class _TableReader:
         folder = self.flow_dir / keys
         if not (folder / "server.key_secret").is_file():
             self.log.add(at + ("keys",), f"expected {param.rule}, got {toml_repr(keys)}")
+            return False, None
+        problem = key_folder_problem(folder)
+        if problem:
+            self.log.add(at + ("keys",), problem)
             return False, None
         if endpoint is None:
             self.log.add(at + ("keys",), "keys apply to links with an endpoint")

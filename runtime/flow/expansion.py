@@ -10,6 +10,7 @@ before anything runs.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -264,9 +265,20 @@ class _Expander:
             self.links.append(link)
 
 
+def default_process_limit() -> int:
+    """One block process per 128 MiB of this machine's memory (a worker with numpy and ZeroMQ loaded takes
+    60-100 MB), at least 16 and at most 1000."""
+    try:
+        memory = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError):
+        memory = 4 << 30
+    return max(16, min(1000, memory // (128 << 20)))
+
+
 def expand(log: ProblemLog, decls: dict[str, Declaration], links: list[RawLink], order: list[str], *,
-           flow_path: Path, output_dir: Path) -> tuple[dict[str, Instance], list[Link]]:
-    """Instances (producers first) and links; problems found on the way go to ``log``."""
+           flow_path: Path, output_dir: Path, max_processes: int) -> tuple[dict[str, Instance], list[Link]]:
+    """Instances (producers first) and links; problems found on the way go to ``log``. Expansion stops at
+    ``max_processes`` instances (a per-channel block could otherwise make thousands)."""
     expander = _Expander(log, decls, flow_path, output_dir)
     for name in order:
         decl = decls[name]
@@ -275,6 +287,11 @@ def expand(log: ProblemLog, decls: dict[str, Declaration], links: list[RawLink],
             continue                    # its own problems are reported; its outputs are unknown
         copies = expander.per_channel_copies(name, decl) if decl.per_channel else expander.single(name, links)
         for inst_name, placeholders, feeds in copies:
+            if len(expander.instances) >= max_processes:
+                log.add(("blocks", name), f"the flow would start more than {max_processes} block processes (each "
+                        f"per-channel copy is one); the limit is [flow] max_processes — raise it if this machine "
+                        f"can carry them")
+                return expander.instances, expander.links
             expander.make(name, decl, inst_name, placeholders, feeds)
     expander.endpoint_links(links)
     return expander.instances, expander.links

@@ -9,10 +9,12 @@ from typing import Any
 
 from ..plugins import Registry
 from .declarations import read_tables
-from .expansion import check_inputs, expand, wiring_order
+from .expansion import check_inputs, default_process_limit, expand, wiring_order
 from .locator import KeyLocator
 from .model import Flow, Instance, Link, OnFailure
+from .output_paths import check_output_paths
 from .problems import FlowErrors, Problem, ProblemLog, syntax_problem
+from .text_checks import MAX_FLOW_BYTES, decode_flow
 
 __all__ = ["check_flow", "load_flow"]
 
@@ -29,6 +31,11 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
     log = ProblemLog(path, KeyLocator(text).find)
     tables = read_tables(dict(mapping), log, registry, path.parent)
     decls, links = tables.declarations, tables.links
+    limit = tables.meta.get("max_processes") or default_process_limit()
+    if len(decls) > limit:
+        log.add(("flow",), f"the flow declares {len(decls)} block processes; the limit is {limit} ([flow] "
+                f"max_processes, sized for this machine) — raise it if this machine can carry them")
+        raise FlowErrors(log.problems)
     order = wiring_order(log, decls, links)
     check_inputs(log, decls, links, tables.claimed)
     instances: dict[str, Instance] = {}
@@ -36,8 +43,9 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
     if order is not None:
         # streams are worked out for every block that was declared well, so that their
         # problems are reported along with the others
-        instances, expanded = expand(log, decls, links, order, flow_path=path,
-                                     output_dir=Path(output_dir) if output_dir else Path.cwd())
+        out = Path(output_dir) if output_dir else Path.cwd()
+        instances, expanded = expand(log, decls, links, order, flow_path=path, output_dir=out, max_processes=limit)
+        check_output_paths(log, instances, flow_path=path, output_dir=out)
     continuing = {i.declared: i for i in instances.values() if i.policy.on_failure is OnFailure.CONTINUE
                   and any(link.target for links in i.outputs.values() for link in links)}
     for declared, inst in continuing.items():
@@ -60,12 +68,13 @@ def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | 
     """Parse and check a flow file; return a Flow or raise FlowErrors with every problem."""
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        with open(path, "rb") as handle:
+            raw = handle.read(MAX_FLOW_BYTES + 1)
     except OSError as error:
         raise FlowErrors([Problem(str(path), "", f"cannot read the flow file: {error.strerror}")]) from None
-    except UnicodeDecodeError as error:
-        raise FlowErrors([Problem(str(path), "", f"the flow file is not UTF-8 text ({error.reason} at byte "
-                                                 f"{error.start})")]) from None
+    text, problems = decode_flow(str(path), raw)
+    if text is None or problems:
+        raise FlowErrors(problems)
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:

@@ -12,16 +12,27 @@ from .problems import KeyPath
 
 __all__ = ["KeyLocator"]
 
-_HEADER = re.compile(r"^\s*(\[\[?)\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
-
-
 def _header(line: str) -> tuple[bool, tuple[str, ...]] | None:
-    """(is an array table, its dotted name split) when ``line`` is a table header."""
-    m = _HEADER.match(line)
-    if not m:
+    """(is an array table, its dotted name split) when ``line`` is a table header. Plain string
+    operations, linear in the line's length whatever it holds (no backtracking pattern)."""
+    text = line.strip()
+    if not text.startswith("["):
         return None
-    parts = tuple(p.strip().strip('"').strip("'") for p in m.group(2).split("."))
-    return m.group(1) == "[[", parts
+    array = text.startswith("[[")
+    body = text[2 if array else 1:]
+    end = body.find("]")
+    if end <= 0:
+        return None
+    name, tail = body[:end].strip(), body[end + 1:]
+    if array:
+        if not tail.startswith("]"):
+            return None
+        tail = tail[1:]
+    tail = tail.strip()
+    if not name or (tail and not tail.startswith("#")):
+        return None
+    parts = tuple(p.strip().strip('"').strip("'") for p in name.split("."))
+    return array, parts
 
 
 class KeyLocator:

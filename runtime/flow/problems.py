@@ -14,10 +14,29 @@ import tomllib
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
-__all__ = ["FlowErrors", "KeyPath", "Problem", "did_you_mean", "format_key_path", "known_names",
+__all__ = ["FlowErrors", "KeyPath", "Problem", "did_you_mean", "format_key_path", "known_names", "printable",
            "parse_key_path", "ProblemLog", "syntax_problem"]
 
 KeyPath = tuple[str | int, ...]
+
+
+#: At most this many characters of a problem's message are printed (the rest is elided in the middle).
+MESSAGE_CHARS = 600
+
+
+def printable(text: str, limit: int) -> str:
+    r"""``text`` safe for a terminal: control and format characters (escape sequences, a newline in a
+    name, bidirectional overrides) written as escapes, and shortened to about ``limit`` characters.
+
+    >>> printable("red\x1b[31m name\n", 80), printable("x" * 50, 20)
+    ('red\\x1b[31m name\\n', 'xxxx … (50 characters) … xxxx')
+    """
+    if len(text) > limit:
+        keep = max(4, (limit - 24) // 2)
+        text = f"{text[:keep]} … ({len(text)} characters) … {text[-keep:]}"
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
 
 
 def format_key_path(path: Iterable[str | int]) -> str:
@@ -49,12 +68,13 @@ class Problem:
     column: int | None = None
 
     def __str__(self) -> str:
-        place = self.file
+        place = printable(self.file, 200)
         if self.line:
             place += f":{self.line}"
             if self.column:
                 place += f":{self.column}"
-        return f"{place}: {self.where}: {self.message}" if self.where else f"{place}: {self.message}"
+        message = printable(self.message, MESSAGE_CHARS)
+        return f"{place}: {printable(self.where, 200)}: {message}" if self.where else f"{place}: {message}"
 
 
 class FlowErrors(ValueError):

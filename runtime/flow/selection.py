@@ -18,7 +18,7 @@ from bandloom.blocks.units import UnitError, format_frequency, parse_quantity
 __all__ = ["DEFAULT_TOLERANCE_FRACTION", "SelectionError", "resolve_selection"]
 
 DEFAULT_TOLERANCE_FRACTION = 0.05
-_RANGE = re.compile(r"^\s*\d+\s*\.\.\s*\d+\s*$")
+_RANGE = re.compile(r"\s*\d+\s*\.\.\s*\d+\s*\Z")
 _WHAT = "expected a channel number, a range \"A..B\", a frequency or \"all\""
 
 
@@ -46,7 +46,7 @@ def _pick_frequency(item: str, stream: StreamInfo, limit: float) -> int:
     return stream.channels[nearest]
 
 
-def _channels_of(item: Any, stream: StreamInfo, limit: float) -> list[int]:
+def _channels_of(item: Any, stream: StreamInfo, limit: float, available: str) -> list[int] | range:
     if isinstance(item, bool):
         raise SelectionError(f"{_WHAT}, got {toml_repr(item)}")
     if isinstance(item, int):
@@ -55,7 +55,10 @@ def _channels_of(item: Any, stream: StreamInfo, limit: float) -> list[int]:
         a, b = (int(v) for v in item.split(".."))
         if b < a:
             raise SelectionError(f"range {item!r} runs backwards; write \"{b}..{a}\"")
-        return list(range(a, b + 1))
+        for end in (a, b):         # both ends first: a range is never longer than the stream is wide
+            if end not in stream.channels:
+                raise SelectionError(f"channel {end} does not exist: the stream has {available}")
+        return range(a, b + 1)
     if isinstance(item, str):
         return [_pick_frequency(item, stream, limit)]
     raise SelectionError(f"{_WHAT}, got {toml_repr(item)}")
@@ -78,11 +81,13 @@ def resolve_selection(select: Any, stream: StreamInfo, tolerance: float | None =
     limit = tolerance if tolerance is not None else DEFAULT_TOLERANCE_FRACTION * stream.channel_spacing
     available = (f"channels {min(stream.channels)}..{max(stream.channels)}" if stream.channels else "no channels")
     columns: list[int] = []
+    taken: set[int] = set()
     for item in items:
-        for channel in _channels_of(item, stream, limit):
+        for channel in _channels_of(item, stream, limit, available):
             if channel not in lookup:
                 raise SelectionError(f"channel {channel} does not exist: the stream has {available}")
-            if lookup[channel] in columns:
+            if lookup[channel] in taken:
                 raise SelectionError(f"channel {channel} is selected twice")
             columns.append(lookup[channel])
+            taken.add(lookup[channel])
     return columns
