@@ -17,6 +17,7 @@ from bandloom.blocks.units import format_frequency
 
 from .flow import Flow, FlowErrors, format_key_path, load_flow
 from .flow.declarations import BLOCK_OPTIONS
+from .flow.overrides import parse_override
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
@@ -53,7 +54,8 @@ def _registry(log: TextIO) -> Registry:
 def _load(args: argparse.Namespace, log: TextIO) -> Flow | None:
     registry = _registry(log)
     try:
-        flow = load_flow(args.flow, registry, output_dir=getattr(args, "out", None))
+        overrides = [parse_override(text) for text in getattr(args, "set", None) or []]
+        flow = load_flow(args.flow, registry, output_dir=getattr(args, "out", None), overrides=overrides)
         for link in flow.links:
             if link.options.insecure and link.endpoint:
                 print(f"bandloom: warning: {flow.path}: {format_key_path(link.where)}: {link.endpoint} sends samples "
@@ -68,8 +70,15 @@ def _load(args: argparse.Namespace, log: TextIO) -> Flow | None:
         return None
 
 
+def add_override_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--set", action="append", default=[], metavar="BLOCK.KEY=VALUE",
+                        help="override a block parameter (or flow.KEY) for this run, checked like the file; "
+                             "repeat for several; files read are relative to the current folder")
+
+
 def add_check_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("flow", help="the flow file (TOML)")
+    add_override_argument(parser)
     parser.add_argument("--out", help="output folder the run would use (default: current folder)")
 
 
@@ -93,6 +102,7 @@ def run_check(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) 
 
 def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("flow", help="the flow file (TOML)")
+    add_override_argument(parser)
     parser.add_argument("--out", help="folder for output files (default: current folder)")
     parser.add_argument("--quiet", action="store_true", help="print only errors and the verdict line")
     parser.add_argument("--accept-loss", action="store_true", help="exit 0 even if samples were lost (the verdict "

@@ -15,10 +15,10 @@ def bandloom(*args, cwd=None, timeout=240, stdin=None, env=None, binary_stdout=F
     return done
 
 
-def run_flow(flow_path, out_dir, *extra, timeout=240):
+def run_flow(flow_path, out_dir, *extra, timeout=240, cwd=None):
     """Run a flow with a JSON report; return (completed process with bytes stdout, report dict or None)."""
     report = out_dir / "report.json"
     done = bandloom("run", flow_path, "--out", out_dir, "--report", report, "--quiet", *extra, timeout=timeout,
-                    binary_stdout=True)
+                    binary_stdout=True, cwd=cwd)
     data = json.loads(report.read_text()) if report.exists() else None
     return done, data

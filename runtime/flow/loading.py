@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -13,6 +13,7 @@ from .expansion import check_inputs, default_process_limit, expand, wiring_order
 from .locator import KeyLocator
 from .model import Flow, Instance, Link, OnFailure
 from .output_paths import check_output_paths
+from .overrides import Override, apply_overrides, attribute_to_overrides
 from .problems import FlowErrors, Problem, ProblemLog, syntax_problem
 from .text_checks import MAX_FLOW_BYTES, decode_flow
 
@@ -64,8 +65,10 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
                 instances=instances, links=expanded)
 
 
-def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | None = None) -> Flow:
-    """Parse and check a flow file; return a Flow or raise FlowErrors with every problem."""
+def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | None = None,
+              overrides: Sequence[Override] = ()) -> Flow:
+    """Parse and check a flow file, with command-line ``overrides`` put in (:mod:`.overrides`); return a
+    Flow or raise FlowErrors with every problem."""
     path = Path(path)
     try:
         with open(path, "rb") as handle:
@@ -79,4 +82,8 @@ def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | 
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:
         raise FlowErrors([syntax_problem(path, error)]) from None
-    return check_flow(data, registry, path=path, text=text, output_dir=output_dir)
+    apply_overrides(data, list(overrides), registry, path)
+    try:
+        return check_flow(data, registry, path=path, text=text, output_dir=output_dir)
+    except FlowErrors as errors:
+        raise attribute_to_overrides(errors, list(overrides)) from None
