@@ -40,6 +40,7 @@ from .sample_formats import COMPLEX_FORMATS, FORMATS
 __all__ = ["MAX_BUFFER_BYTES", "StdinReader", "StdoutWriter", "UDPReader"]
 
 MAX_BUFFER_BYTES = 1 << 30
+UDP_PAYLOAD_BYTES = 65507          # the largest UDP payload over IPv4 (RFC 768 length less the headers)
 SO_RXQ_OVFL = getattr(socket, "SO_RXQ_OVFL", 40)     # Linux: count of datagrams the kernel dropped
 
 LIVE_PARAMS = (
@@ -203,7 +204,7 @@ class UDPReader(_LiveSource):
         Param("address", "str", "local address to listen on", default="127.0.0.1"),
         Param("port", "int", "UDP port", minimum=1, maximum=65535),
         Param("header_bytes", "int", "bytes to skip at the start of each datagram", default=0, minimum=0,
-              maximum=65507),
+              maximum=UDP_PAYLOAD_BYTES),
         Param("socket_buffer", "int", "bytes the kernel holds for the socket (SO_RCVBUF)", default=1 << 22,
               minimum=4096, maximum=1 << 30),
         Param("idle_timeout", "quantity", "end the stream after this long without datagrams, counted from "
@@ -217,6 +218,14 @@ class UDPReader(_LiveSource):
         self.kernel_dropped_samples = 0  # the same, in samples (each taken as large as the next one received)
         self.unusable = 0                # datagrams shorter than the header, or not whole samples
         self.unusable_bytes = 0
+
+    def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
+        room = UDP_PAYLOAD_BYTES - self.params["header_bytes"]
+        if room < self.sample_bytes:
+            raise BlockError(f"header_bytes = {self.params['header_bytes']} leaves {max(0, room)} bytes of the largest "
+                             f"UDP datagram ({UDP_PAYLOAD_BYTES} bytes), less than one {self.params['format']} sample "
+                             f"({self.sample_bytes} bytes): every datagram would be discarded", param="header_bytes")
+        return super().output_streams(inputs)
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         self.sock = socket.socket(socket.AF_INET6 if ":" in self.params["address"] else socket.AF_INET,

@@ -89,6 +89,7 @@ def configure(sock: zmq.Socket, queue: int) -> None:
     # delivered (a consumer may still be starting). An aborted run ends
     # stuck senders by killing them.
     sock.setsockopt(zmq.LINGER, -1)
+    sock.setsockopt(zmq.IPV6, 1)           # tcp://[::1]:PORT works; IPv4 addresses still do
     sock.setsockopt(zmq.SNDHWM, queue)
     sock.setsockopt(zmq.RCVHWM, queue)
     sock.setsockopt(zmq.MAXMSGSIZE, MESSAGE_BYTES + wire.HEADER_LIMIT)

@@ -13,6 +13,7 @@ import time
 
 import msgpack
 import numpy as np
+import pytest
 import zmq
 
 RATE = 200_000
@@ -25,7 +26,7 @@ def free_port():
         return s.getsockname()[1]
 
 
-def start_flow(tmp_path, port, *, seconds=2, pace=True, extra="", args=()):
+def start_flow(tmp_path, port, *, seconds=2, pace=True, extra="", args=(), host="127.0.0.1"):
     flow = tmp_path / "expose.toml"
     flow.write_text(textwrap.dedent(f"""
         [blocks.band]
@@ -38,7 +39,7 @@ def start_flow(tmp_path, port, *, seconds=2, pace=True, extra="", args=()):
 
         [[links]]
         from = "band.samples"
-        endpoint = "tcp://127.0.0.1:{port}"
+        endpoint = "tcp://{host}:{port}"
         queue = 4
         {extra}
     """))
@@ -51,8 +52,8 @@ def start_flow(tmp_path, port, *, seconds=2, pace=True, extra="", args=()):
 class Consumer:
     """A consumer as docs/wire.md describes it: a DEALER that asks for credit and acknowledges by seq."""
 
-    def __init__(self, ctx, port, credit=4):
-        self.ctx, self.port, self.credit = ctx, port, credit
+    def __init__(self, ctx, port, credit=4, host="127.0.0.1"):
+        self.ctx, self.port, self.credit, self.host = ctx, port, credit, host
         self.connect()
 
     def connect(self):
@@ -60,7 +61,8 @@ class Consumer:
         self.sock = ctx.socket(zmq.DEALER)
         self.sock.setsockopt(zmq.MAXMSGSIZE, 16 << 20)
         self.sock.setsockopt(zmq.RCVTIMEO, 30_000)
-        self.sock.connect(f"tcp://127.0.0.1:{port}")
+        self.sock.setsockopt(zmq.IPV6, 1)
+        self.sock.connect(f"tcp://{self.host}:{port}")
         self.sock.send(msgpack.packb({"credit": credit}))
 
     def receive(self):
@@ -268,3 +270,33 @@ def test_the_consumer_in_docs_wire_md_runs_as_written(tmp_path):
     assert consumer.stdout.startswith(f"{RATE} ")
     assert process.returncode == 0, stderr
     assert report["links"][0]["delivered_samples"] == RATE
+
+
+def ipv6_loopback_port():
+    """A free port on ::1, or None when this machine has no IPv6 loopback."""
+    try:
+        with socket.socket(socket.AF_INET6) as s:
+            s.bind(("::1", 0))
+            return s.getsockname()[1]
+    except OSError:
+        return None
+
+
+def test_an_ipv6_endpoint_serves_its_consumer(tmp_path):
+    """tcp://[::1]:PORT (RFC 4291 loopback): the endpoint binds with IPv6 enabled and a consumer takes the
+    whole stream, rows in order, end of stream last."""
+    port = ipv6_loopback_port()
+    if port is None:
+        pytest.skip("this machine has no IPv6 loopback (::1)")
+    process, report = start_flow(tmp_path, port, seconds=0.5, pace=False, host="[::1]")
+    ctx = zmq.Context()
+    consumer = Consumer(ctx, port, host="[::1]")
+    try:
+        got, end = consumer.take_all()
+    finally:
+        consumer.sock.close()
+        ctx.term()
+    stderr, summary = finish(process, report)
+    assert process.returncode == 0, stderr
+    assert sum(len(rows) for _, rows in got) == end["first_index"] == int(RATE * 0.5)
+    assert summary["links"][0]["delivered_samples"] == int(RATE * 0.5)
