@@ -292,6 +292,7 @@ class Block:
     outputs: ClassVar[tuple[Port, ...]] = ()
     is_source: ClassVar[bool] = False
     restartable: ClassVar[bool] = False
+    details: ClassVar[str] = ""             # more than a parameter's line holds (a list's table keys), plain text
     uses_stdin: ClassVar[bool] = False     # the one block of a flow that reads the run's standard input
     uses_stdout: ClassVar[bool] = False    # the one block of a flow that writes data to the run's standard output
 

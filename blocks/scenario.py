@@ -49,6 +49,28 @@ _FIELDS = {
 }
 
 
+_MEANING = {
+    "depth": "modulation depth, 0 to 1", "tone": "modulating tone in Hz, or \"voice\" for voice-like audio",
+    "deviation": "peak frequency deviation", "baud": "symbols per second", "shift": "tone spacing (tones at +-shift/2)",
+    "bandwidth": "width of the band-limited noise",
+}
+
+
+def transmitter_keys() -> str:
+    """The keys of a ``transmitters`` table, per kind, in plain text (made from the tables the parser uses)."""
+    lines = ["Each entry of `transmitters` is an inline table:",
+             f"- every kind: `kind` (one of {', '.join(KINDS)}), `frequency` (RF, in Hz, inside the band), "
+             "`level` (dBFS, -300 to +40), `on` (a list of [start, stop] times in s; default: always on; "
+             "5 ms raised-cosine ramps)"]
+    for kind in KINDS:
+        keys = [f"`{key}` ({_MEANING[key]}; default {default:g}{'' if unit == 'float' else ' Hz'})"
+                for key, (unit, default) in _FIELDS[kind].items()]
+        lines.append(f"- {kind}: " + ("; ".join(keys) if keys else "no other keys"))
+    lines.append("Rates (deviation, baud, shift, tone) are at most half the sample rate, bandwidth at most the "
+                 "sample rate, all above 0.")
+    return "\n".join(lines)
+
+
 def parse_transmitters(items: list[Any], sample_rate: float, centre: float) -> list[dict[str, Any]]:
     """Check the ``transmitters`` list; return plain dicts (Hz, seconds, linear amplitude)."""
     out = []
@@ -193,13 +215,14 @@ class _Transmitter:
 class Scenario(Block):
     type_name = "scenario"
     summary = "Generate a seeded synthetic band: noise floor plus CW, AM, FM, FSK and wideband transmitters."
+    details = transmitter_keys()
     is_source = True
     parameters = (
         Param("sample_rate", "quantity", "sample rate of the band", unit="Hz", minimum=1.0),
         Param("centre_frequency", "quantity", "RF frequency at the band's centre", default=0.0, unit="Hz"),
         Param("duration", "quantity", "length of the scenario", unit="s", minimum=0.0),
         Param("noise", "quantity", "white-noise power over the whole band", default=-80.0, unit="dBFS"),
-        Param("transmitters", "list", "the transmitters, one inline table each (see docs/blocks.md)", default=[]),
+        Param("transmitters", "list", "the transmitters, one inline table each (keys below)", default=[]),
         Param("seed", "int", "random seed: the same seed gives the same band", default=1, minimum=0,
               maximum=(1 << 63) - 1),
         Param("chunk_size", "int", "samples per message", default=65536, minimum=1, maximum=1 << 24),

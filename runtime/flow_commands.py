@@ -187,6 +187,8 @@ def blocks_markdown(registry: Registry, names: list[str]) -> str:
         lines += [f"## {name}", "", cls.summary, ""]
         if cls.restartable:
             lines += ['Can be restarted part way through a stream (`on_failure = "restart"`).', ""]
+        if cls.details:
+            lines += [cls.details, ""]
         if cls.parameters:
             lines += ["| parameter | type | default | meaning |", "|---|---|---|---|"]
             for p in cls.parameters:
@@ -228,6 +230,8 @@ def run_blocks(args: argparse.Namespace, out: TextIO, log: TextIO | None = None)
             out.write("  (none)\n")
         for port in ports:
             out.write(f"  {port.name} ({port.kind}, {'/'.join(port.sample_types)}): {port.doc}\n")
+    if cls.details:
+        out.write("\n" + cls.details.replace("`", "") + "\n")
     if cls.inputs:
         can = 'on_failure = "stop", "restart" or "continue"' if cls.restartable else \
             'on_failure = "stop" or "continue" (it cannot take over part way through a stream)'

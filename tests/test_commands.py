@@ -74,3 +74,17 @@ def test_version_is_pyprojects_from_the_command_the_module_and_the_package():
         assert (done.returncode, done.stdout.strip()) == (0, f"bandloom {project['version']}"), done.stderr
     assert project["license"] == "MIT" and (root / "LICENSE").read_text().startswith("MIT License")
     assert "LICENSE" in project["license-files"]
+
+
+def test_scenario_transmitter_keys_are_documented_where_users_look(capsys):
+    """Every key the scenario's transmitter parser takes, for every kind, is named by 'bandloom blocks
+    scenario' (and so in docs/blocks.md, generated from the same text)."""
+    from bandloom.blocks.scenario import _FIELDS, KINDS
+    assert main(["blocks", "scenario"]) == 0
+    text = capsys.readouterr().out
+    for kind in KINDS:
+        assert f"- {kind}: " in text
+        for key in _FIELDS[kind]:
+            assert f"{key} (" in text.split(f"- {kind}: ")[1].splitlines()[0]
+    for key in ("kind", "frequency", "level", "on"):
+        assert f"{key} (" in text

@@ -61,7 +61,8 @@ def test_cost_model_matches_schniter(channels, taps_per_branch, expected):
 
 
 def test_kaiser_lowpass_rejection_follows_kaiser_formula():
-    """A firwin Kaiser design for 80 dB (scipy.signal.kaiserord, Oppenheim & Schafer) rejects >= 79 dB past its transition."""
+    """A firwin Kaiser design for 80 dB (scipy.signal.kaiserord, after Kaiser 1974) rejects >= 79 dB past its
+    transition."""
     numtaps, beta = scipy.signal.kaiserord(80, 0.05)
     taps = scipy.signal.firwin(numtaps, 0.125, window=("kaiser", beta))
     # As an M = 8 bank (spacing fs/8 = 0.25 of Nyquist) the cutoff 0.125 of Nyquist
