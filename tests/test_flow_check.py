@@ -58,3 +58,31 @@ def test_block_reference_is_up_to_date(capsys):
     assert main(["blocks", "--markdown"]) == 0
     reference = Path(__file__).parent.parent / "docs" / "blocks.md"
     assert capsys.readouterr().out == reference.read_text()
+
+
+def _per_channel_flow(select):
+    return {"blocks": {"src": {"type": "scenario", "sample_rate": "1.6 MHz", "centre_frequency": "100 MHz",
+                               "duration": "0.1 s"},
+                       "split": {"type": "channelizer", "channels": 16},
+                       "keep": {"type": "discard", "per_channel": {"from": "split.channels", "select": select}}},
+            "links": [{"from": "src.samples", "to": "split.samples"}]}
+
+
+def test_signed_channel_numbers_and_frequency_ranges_pick_the_channels_numpy_fftfreq_says():
+    """Channel k is centred k * rate / M in FFT order (numpy.fft.fftfreq gives the order): "-2..2" is the five
+    channels around the centre, -1 is channel M-1, and a frequency range takes every channel whose centre lies
+    inside it, lowest first."""
+    import numpy as np
+    from bandloom.runtime.flow import check_flow
+    from bandloom.runtime.plugins import load_registry
+    registry = load_registry()
+    centres = 100e6 + np.fft.fftfreq(16) * 1.6e6            # channel k's centre, FFT order
+
+    def picked(select):
+        flow = check_flow(_per_channel_flow(select), registry, path="sel.toml")
+        return [inst.placeholders["channel"] for inst in flow.instances.values() if inst.declared == "keep"]
+
+    assert picked("-2..2") == [14, 15, 0, 1, 2]
+    assert picked(-1) == [15]
+    inside = [int(k) for k in np.argsort(centres) if 99.75e6 <= centres[k] <= 100.25e6]
+    assert picked("99.75 MHz..100.25 MHz") == inside == [14, 15, 0, 1, 2]
