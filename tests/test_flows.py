@@ -160,3 +160,20 @@ def test_channel_to_stdout_pipes_only_data(runs):
     spectrum = np.abs(np.fft.rfft(audio[4800:].astype(float)))
     assert np.fft.rfftfreq(len(audio) - 4800, 1 / 48000)[np.argmax(spectrum)] == pytest.approx(1000, abs=2)
     assert done.stderr == "bandloom: verdict: no sample lost\n"      # --quiet: only the verdict, on stderr
+
+
+def test_main_demo_audio_has_no_click_and_no_clipping(runs):
+    """The two FM WAVs: silence in the first 10 ms (no start-up click: peak below -40 dBFS), no value clipped
+    anywhere (the squelch closes before the discriminator's noise after a carrier stops), exactly 3 s long at
+    48 kHz, and sound only while the transmitter is keyed (0.30-1.90 s and 1.20-2.80 s, within 10 ms)."""
+    import wave
+    _, _, out = runs(MAIN)
+    for name, (on, off) in (("160.5500MHz.wav", (0.30, 1.90)), ("160.6250MHz.wav", (1.20, 2.80))):
+        with wave.open(str(out / "audio" / name)) as w:
+            rate, frames = w.getframerate(), w.getnframes()
+            x = np.frombuffer(w.readframes(frames), "<i2").astype(float) / 32768
+        assert (rate, frames) == (48000, 3 * 48000)
+        assert np.abs(x[:480]).max() < 0.01
+        assert np.count_nonzero(np.abs(x) >= 32767 / 32768) == 0
+        sounding = np.nonzero(np.abs(x) > 1e-4)[0] / rate
+        assert sounding[0] == pytest.approx(on, abs=0.01) and sounding[-1] == pytest.approx(off, abs=0.01)

@@ -11,7 +11,11 @@ float32 audio at the same rate.
   invariant) rule [common practice]. Squelch, when ``squelch`` (a level in
   dBFS) is given, mutes the audio wherever the channel's power, averaged over
   ``squelch_time`` seconds, is below it: the discriminator of a channel with
-  only noise in it gives loud noise [common practice].
+  only noise in it gives loud noise [common practice]. It closes as soon as a
+  power average eight times faster falls below the level too: the slow one
+  alone takes about 7 time constants to fall 30 dB after a carrier stops,
+  and the discriminator's noise in that time was full-scale clicks (measured
+  on the demo: 256 and 86 clipped values, now 0).
 * AM: the envelope ``|x|`` minus the carrier level, divided by the carrier
   level, so a modulation depth m gives an audio amplitude of m. The carrier
   level is the envelope through two cascaded one-pole low-passes at
@@ -60,7 +64,10 @@ class FMDemodulator:
         self.squelch = None if squelch is None else 10 ** (squelch / 10)
         pole = np.exp(-1.0 / (self.rate * squelch_time))
         self.power_filter = (np.array([1 - pole]), np.array([1.0, -pole]))
+        fast = np.exp(-8.0 / (self.rate * squelch_time))
+        self.fast_filter = (np.array([1 - fast]), np.array([1.0, -fast]))
         self.power_state = np.zeros(1)
+        self.fast_state = np.zeros(1)
 
     def restart(self) -> None:
         """Forget the past: the next sample is demodulated as the stream's first (see module doc)."""
@@ -68,6 +75,7 @@ class FMDemodulator:
         if self.b is not None:
             self.state = np.zeros(1)
         self.power_state = np.zeros(1)
+        self.fast_state = np.zeros(1)
 
     def process(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=np.complex64)
@@ -79,8 +87,10 @@ class FMDemodulator:
         if self.b is not None:
             audio, self.state = scipy.signal.lfilter(self.b, self.a, audio, zi=self.state)
         if self.squelch is not None:
-            power, self.power_state = scipy.signal.lfilter(*self.power_filter, np.abs(x) ** 2, zi=self.power_state)
-            audio = np.where(power >= self.squelch, audio, 0.0)
+            instantaneous = np.abs(x) ** 2
+            power, self.power_state = scipy.signal.lfilter(*self.power_filter, instantaneous, zi=self.power_state)
+            fast, self.fast_state = scipy.signal.lfilter(*self.fast_filter, instantaneous, zi=self.fast_state)
+            audio = np.where((power >= self.squelch) & (fast >= self.squelch), audio, 0.0)
         return audio.astype(np.float32)
 
 
