@@ -144,6 +144,7 @@ class Outlet(_LinkEnd):
         self.next_index = spec.resume_index or 0    # index after the last row sent
         self.offered_index = self.next_index        # index after the last row offered, sent or dropped
         self.seq = spec.resume_seq
+        self.restarted = spec.resume_index is not None   # its first message starts a new sequence count
         self.rows = 0
         self.messages = 0
         self.dropped_rows = 0
@@ -207,7 +208,7 @@ class Outlet(_LinkEnd):
         if gap < 0:
             raise RuntimeError(f"link {self.spec.label}: chunk starts at {chunk.first_index}, before "
                                f"the {self.next_index} rows already sent")
-        flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity) else 0
+        flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity or self.restarted) else 0
         header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
                                     dropped=gap, **self._fixed)
         if not self.attached or not self._send([header, data], droppable=self.when_full is WhenFull.DROP,
@@ -217,6 +218,7 @@ class Outlet(_LinkEnd):
             self.down_rows += 0 if self.attached else count
             return
         self.seq += 1
+        self.restarted = False
         self.messages += 1
         self.rows += count
         self.discontinuities += bool(flags)
@@ -246,7 +248,7 @@ class Outlet(_LinkEnd):
 
     def _send_end(self) -> None:
         gap = max(0, max(self.final_index or 0, self.offered_index) - self.next_index)
-        flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap else 0)
+        flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap or self.restarted else 0)
         header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
                                     dropped=gap, **self._fixed)
         self._send([header, b""], droppable=False, seq=self.seq, rows=0)
@@ -269,7 +271,8 @@ class Outlet(_LinkEnd):
 
 
 class Inlet(_LinkEnd):
-    """The receiving end of one link, feeding input ``port``; binds its private endpoint."""
+    """The receiving end of one link, feeding input ``port``; binds its private endpoint. Each message is
+    checked by a :class:`~.wire.Continuity` (it continues the stream, or it is refused)."""
 
     def __init__(self, context: zmq.Context, spec: LinkSpec, port: str) -> None:
         self.spec = spec
@@ -277,23 +280,28 @@ class Inlet(_LinkEnd):
         self.port = port
         self.stream = spec.stream
         self.sock, _ = open_socket(context, zmq.PULL, spec, bind=True)
-        self.rows = 0
         self.messages = 0
-        self.gaps = 0
-        self.missing = 0
-        self.last_seq = -1
-        self.next_index = spec.resume_index or 0     # absolute index after the last row received or missed
+        # absolute index after the last row received or missed: a restarted instance resumes there
+        self.continuity = wire.Continuity(next_index=spec.resume_index or 0)
         self.block_index = 0                         # the same, as the block has seen it
         self.resumed = spec.resume_index is not None
         self.lost_at_restart = 0
         self.ended = False
 
+    @property
+    def rows(self) -> int:
+        return self.continuity.rows
+
+    @property
+    def next_index(self) -> int:
+        return self.continuity.next_index
+
     def take_over(self, kept: int | None) -> None:
         """A restarted block says its failed predecessor's work is kept up to index ``kept`` (a file it
         continues): rows up to there that the predecessor read after its last report count as received."""
         if kept is not None and self.resumed and kept > self.next_index:
-            self.rows += kept - self.next_index
-            self.next_index = kept
+            self.continuity.rows += kept - self.next_index
+            self.continuity.next_index = kept
 
     def receive(self) -> Chunk | None:
         """Take one message; return a Chunk, or None at the end of the stream (then ``ended`` is set;
@@ -303,47 +311,37 @@ class Inlet(_LinkEnd):
         if len(frames) != 2:
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
         header = wire.decode_header(frames[0].buffer)
-        # The receiver checks continuity itself: rows skipped without being declared are counted too.
-        if header["first_index"] < self.next_index:
-            raise wire.WireError(f"message {header['seq']} starts at row {header['first_index']}, before the "
-                                 f"{self.next_index} rows already received")
+        end = bool(header["flags"] & wire.FLAG_END)
+        if not end and (header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width):
+            raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
+                                 f"was set up for {self.stream.sample_type} x {self.stream.width}")
+        data = None if end else wire.decode_payload(header, frames[1].buffer)
         declared = header["dropped"]
-        header["dropped"] = header["first_index"] - self.next_index
+        gap = self.continuity.take(header)          # rows skipped without a word are counted too
         for_block = header["first_index"] - self.block_index      # the gap as the block sees it
+        self.block_index = self.continuity.next_index
         if self.resumed:
             # the first message after a restart: what was sent but never declared missing went to
             # the instance that died, or was lost with its connection
-            self.lost_at_restart = max(0, header["dropped"] - declared)
+            self.lost_at_restart = max(0, gap - declared)
             self.resumed = False
-        if header["flags"] & wire.FLAG_END:
+        if end:
             self.ended = True
             if not for_block:
                 return None
             # rows lost after the last message: an empty chunk tells the block how many
-            if header["dropped"]:
-                self.gaps += 1
-                self.missing += header["dropped"]
-            self.next_index = self.block_index = header["first_index"]
             return Chunk(np.zeros((0,) if self.stream.width == 1 else (0, self.stream.width), self.stream.dtype),
                          header["first_index"], discontinuity=True, dropped=for_block)
-        if header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width:
-            raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
-                                 f"was set up for {self.stream.sample_type} x {self.stream.width}")
-        data = wire.decode_payload(header, frames[1].buffer)
-        self.next_index = self.block_index = header["first_index"] + header["count"]
-        self.rows += header["count"]
+        assert data is not None
         self.messages += 1
-        self.last_seq = header["seq"]
-        if header["dropped"]:
-            self.gaps += 1
-            self.missing += header["dropped"]
         return Chunk(data, header["first_index"],
                      discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or for_block),
                      dropped=for_block)
 
     def stats(self) -> InletStats:
-        return InletStats(rows=self.rows, messages=self.messages, seq=self.last_seq, gaps=self.gaps,
-                          missing=self.missing, next_index=self.next_index, lost_at_restart=self.lost_at_restart)
+        c = self.continuity
+        return InletStats(rows=c.rows, messages=self.messages, seq=c.last_seq, gaps=c.gaps, missing=c.missing,
+                          next_index=c.next_index, lost_at_restart=self.lost_at_restart)
 
     def close(self) -> None:
         self.sock.close(linger=0)

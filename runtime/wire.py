@@ -18,8 +18,8 @@ import msgpack
 import numpy as np
 from bandloom.blocks.sample_formats import STREAM_TYPES
 
-__all__ = ["FLAG_DISCONTINUITY", "FLAG_END", "FLAG_REFUSED", "HEADER_LIMIT", "MAX_CREDIT", "MAX_ROWS", "REQUEST_LIMIT",
-           "Request", "SAMPLE_TYPES", "VERSION", "WireError", "decode_header", "decode_payload", "decode_request",
+__all__ = ["Continuity", "FLAG_DISCONTINUITY", "FLAG_END", "FLAG_REFUSED", "HEADER_LIMIT", "MAX_CREDIT", "MAX_ROWS",
+           "REQUEST_LIMIT", "Request", "SAMPLE_TYPES", "VERSION", "WireError", "decode_header", "decode_payload", "decode_request",
            "encode_header", "encode_request"]
 
 VERSION = 1
@@ -107,6 +107,52 @@ def decode_header(raw: bytes | memoryview) -> dict[str, Any]:
         raise WireError(f"channels lists {len(header['channels'])} entries for width {header['width']}")
     header.setdefault("dropped", 0)
     return header
+
+
+@dataclass
+class Continuity:
+    """Where a received stream stands, checked message by message against the rules of docs/wire.md.
+
+    ``next_index`` is the absolute index after the last row received (or counted missing). A message must
+    start at or after it (rows in between are its gap, counted in ``missing``, and in ``undeclared`` when
+    the header's ``dropped`` did not say so); must not declare more rows dropped than it skipped; and must
+    carry the sequence number after the last one, unless it is flagged as a discontinuity (a sender that
+    restarted begins a new count). :meth:`take` raises WireError for a message that breaks a rule and
+    changes nothing then.
+
+    >>> c = Continuity()
+    >>> c.take(dict(seq=0, first_index=0, count=4, dropped=0, flags=0)), c.take(dict(seq=1, first_index=6,
+    ...        count=2, dropped=2, flags=FLAG_DISCONTINUITY)), (c.rows, c.missing, c.next_index)
+    (0, 2, (6, 2, 8))
+    """
+
+    next_index: int = 0
+    last_seq: int = -1
+    rows: int = 0
+    missing: int = 0
+    undeclared: int = 0
+    gaps: int = 0
+
+    def take(self, header: dict[str, Any]) -> int:
+        """Account for one decoded header; return its gap (rows missing just before it)."""
+        first, count, seq = header["first_index"], header["count"], header["seq"]
+        if first < self.next_index:
+            raise WireError(f"message {seq} starts at row {first}, before the {self.next_index} rows already "
+                            f"received")
+        gap = first - self.next_index
+        if header["dropped"] > gap:
+            raise WireError(f"message {seq} declares {header['dropped']} rows dropped but follows on after "
+                            f"{gap}")
+        if self.last_seq >= 0 and seq != self.last_seq + 1 and not header["flags"] & FLAG_DISCONTINUITY:
+            raise WireError(f"message {seq} follows message {self.last_seq}: a message was lost, repeated or "
+                            f"reordered without a discontinuity")
+        self.last_seq = seq
+        self.next_index = first + count
+        self.rows += count
+        self.missing += gap
+        self.undeclared += gap - header["dropped"]
+        self.gaps += bool(gap)
+        return gap
 
 
 def decode_payload(header: dict[str, Any], payload: bytes | memoryview) -> np.ndarray:

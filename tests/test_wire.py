@@ -101,3 +101,60 @@ def test_untrusted_bytes_raise_only_wire_errors(raw, payload):
         wire.decode_payload(h, payload)
     except wire.WireError:
         pass
+
+
+# -- continuity: a stream of headers, some of them forged -----------------------------------------------------
+
+@st.composite
+def streams(draw):
+    """A sender's headers (seq, first_index, count, dropped as docs/wire.md says), the rows it skipped, and
+    maybe one forgery at position ``at``."""
+    rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))     # a long stream from a drawn seed
+    headers, index, seq, skipped = [], 0, 0, 0
+    for _ in range(1000):
+        skip = int(rng.choice([0, 0, 0, 0, 3, 1000]))
+        declared = skip if rng.random() < 0.5 else 0          # a skip the sender did not declare is still counted
+        count = int(rng.integers(0, 5001))
+        headers.append(dict(seq=seq, first_index=index + skip, count=count, dropped=declared,
+                            flags=wire.FLAG_DISCONTINUITY if skip else 0))
+        index, seq, skipped = index + skip + count, seq + 1, skipped + skip
+    forgery = draw(st.sampled_from([None, "repeat", "backwards", "over-declared", "seq-skip"]))
+    at = draw(st.integers(1, len(headers) - 1))
+    previous = headers[at - 1]
+    if forgery == "repeat":
+        headers.insert(at, dict(previous))
+    elif forgery == "backwards":
+        headers[at] = dict(headers[at], first_index=max(0, previous["first_index"] + previous["count"] - 1))
+    elif forgery == "over-declared":
+        headers[at] = dict(headers[at], dropped=headers[at]["first_index"] - previous["first_index"]
+                           - previous["count"] + 1)
+    elif forgery == "seq-skip":
+        headers[at] = dict(headers[at], seq=headers[at]["seq"] + 7, flags=0)
+    return headers, skipped, forgery, at
+
+
+@settings(max_examples=100, deadline=None)
+@given(case=streams())
+def test_continuity_accounts_every_row_and_refuses_forged_messages(case):
+    """About 100,000 headers in 100 streams: an honest stream is taken whole and every skipped row is counted
+    missing, declared or not (rows + missing = the last index); a repeated, backwards, over-declared or
+    out-of-sequence message is refused where it was put, and the refused one changes nothing. (A repeat or
+    a step back after an empty message is no forgery at all: it starts where the stream stands.)"""
+    headers, skipped, forgery, at = case
+    c = wire.Continuity()
+    taken, before = 0, None
+    try:
+        for h in headers:
+            before = (c.rows, c.missing, c.next_index, c.last_seq)
+            c.take(h)
+            taken += 1
+    except wire.WireError:
+        assert forgery is not None and taken == at, (forgery, taken, at)
+        assert (c.rows, c.missing, c.next_index, c.last_seq) == before
+        return
+    harmless = forgery in ("repeat", "backwards") and headers[at - 1]["count"] == 0
+    assert forgery is None or harmless, (forgery, at)
+    assert taken == len(headers)
+    assert c.rows + c.missing == c.next_index
+    if forgery is None:
+        assert c.missing == skipped and c.rows == sum(h["count"] for h in headers)
