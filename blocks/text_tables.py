@@ -4,11 +4,28 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-__all__ = ["format_value", "render_pairs", "render_rows"]
+__all__ = ["engineering", "format_value", "render_pairs", "render_rows"]
+
+_PREFIXES = ((1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"))
+
+
+def engineering(value: float, unit: str = "") -> str:
+    """A number with an SI prefix and about four significant digits, for people: 635.5 ksps, 2.4 MHz, 12 µs.
+
+    >>> engineering(635_500.0, "sps"), engineering(2.4e6, "Hz"), engineering(1.2e-5, "s"), engineering(-0.0)
+    ('635.5 ksps', '2.4 MHz', '12 µs', '0')
+    """
+    if value == 0 or value != value or value in (float("inf"), float("-inf")):
+        text = "0" if value == 0 else ("-" if value != value else ("inf" if value > 0 else "-inf"))
+        return f"{text} {unit}" if unit else text
+    scale, prefix = next(((s, p) for s, p in _PREFIXES if abs(value) >= s), _PREFIXES[-1])
+    number = f"{value / scale:.4g}"
+    return f"{number} {prefix}{unit}".rstrip()
 
 
 def format_value(value: object) -> str:
-    """A cell: yes/no for booleans, "-" for None and NaN, floats to about four significant digits."""
+    """A cell: yes/no for booleans, "-" for None and NaN, floats to about four significant digits (with an
+    SI prefix when very large or very small, never as 6.355e+05), and never "-0"."""
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
@@ -19,8 +36,9 @@ def format_value(value: object) -> str:
         if value == 0:
             return "0"                                      # never "-0"
         if abs(value) >= 1e5 or (0 < abs(value) < 1e-3):
-            return f"{value:.4g}"
-        return f"{value:.4f}".rstrip("0").rstrip(".") if abs(value) < 10 else f"{value:.2f}"
+            return engineering(value)
+        text = f"{value:.4f}".rstrip("0").rstrip(".") if abs(value) < 10 else f"{value:.2f}"
+        return "0" if text in ("-0", "0", "-0.00", "0.00") else text
     if value is None:
         return "-"
     return str(value)
@@ -70,5 +88,10 @@ def render_rows(headers: Sequence[object], rows: Sequence[Sequence[object]]) -> 
 def render_pairs(pairs: Sequence[tuple[str, object, str]]) -> str:
     """``label  value  unit`` lines, labels padded to one width."""
     width = max(len(label) for label, _, _ in pairs)
-    return "\n".join(f"{label.ljust(width)}  {format_value(value)}{(' ' + unit) if unit else ''}"
-                     for label, value, unit in pairs)
+
+    def shown(value: object, unit: str) -> str:
+        if isinstance(value, float) and not isinstance(value, bool) and (abs(value) >= 1e5 or 0 < abs(value) < 1e-3):
+            return engineering(value, unit)                 # the prefix joins the unit: 2.4 MHz
+        return f"{format_value(value)}{(' ' + unit) if unit else ''}"
+
+    return "\n".join(f"{label.ljust(width)}  {shown(value, unit)}" for label, value, unit in pairs)

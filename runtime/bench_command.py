@@ -123,6 +123,8 @@ def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = N
         if progress:
             progress(f"bench {i + 1}/{len(cases)}: M={m} R={r} M/D={p}")
         results.append(measure_case(m, r, p, samples=args.samples, chunk=args.chunk, repeats=args.repeats))
+    if progress:
+        progress("")                  # the progress line is cleared before any result is written
     if args.json:
         out.write(json.dumps(results, indent=2) + "\n")
         return 0

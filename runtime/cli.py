@@ -30,6 +30,7 @@ class UsageError(Exception):
 
 
 def _progress(message: str) -> None:
+    """One progress line on a terminal, redrawn in place; "" clears it (before results are written)."""
     if sys.stderr.isatty():
         sys.stderr.write(f"\r\x1b[K{message}")
         sys.stderr.flush()

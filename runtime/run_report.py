@@ -21,7 +21,7 @@ import signal
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any, TextIO
 
-from bandloom.blocks.text_tables import render_rows
+from bandloom.blocks.text_tables import engineering, render_rows
 
 from .control import InletStats, OutletStats
 from .flow import Flow, Link, WhenFull
@@ -206,8 +206,8 @@ class StatusDisplay:
                 part = min(1.0, last.progress[0] / last.progress[1])
                 bar = f"[{'#' * int(20 * part):<20}] {100 * part:3.0f}%"
             queue = f"{100 * fills[name]:.0f}%" if name in fills else "-"
-            rows.append([name[:24], record.state.value, float(f"{record.rate:.4g}"), done, queue, drops, bar])
-        table = render_rows(["block", "state", "rate/s", "samples", "queue", "drops", "progress"], rows)
+            rows.append([name[:24], record.state.value, engineering(record.rate, "sps"), done, queue, drops, bar])
+        table = render_rows(["block", "state", "rate", "samples", "queue", "drops", "progress"], rows)
         self.clear()
         self.log.write(table + "\n")
         self.log.flush()

@@ -88,3 +88,47 @@ def test_scenario_transmitter_keys_are_documented_where_users_look(capsys):
             assert f"{key} (" in text.split(f"- {kind}: ")[1].splitlines()[0]
     for key in ("kind", "frequency", "level", "on"):
         assert f"{key} (" in text
+
+
+def terminal_lines(raw: str) -> list[str]:
+    """What a terminal shows of ``raw``: each line as left by carriage returns and erase-line sequences."""
+    shown = []
+    for line in raw.replace("\r\n", "\n").split("\n"):
+        shown.append(line.split("\r")[-1].replace("\x1b[K", ""))
+    return shown
+
+
+def test_bench_on_a_terminal_clears_its_progress_line_before_the_table():
+    """bench on a terminal (stdout and stderr one pty, as in a shell): the table's header stands on a line of
+    its own, not after the last progress message."""
+    import os
+    import subprocess
+    import sys
+    master, slave = os.openpty()
+    process = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "bench", "--channels", "64",
+                                "--taps-per-branch", "4", "--oversample", "1", "--samples", "65536", "--repeats", "1"],
+                               stdout=slave, stderr=slave)
+    os.close(slave)
+    raw = b""
+    while True:
+        try:
+            data = os.read(master, 4096)
+        except OSError:
+            break
+        if not data:
+            break
+        raw += data
+    os.close(master)
+    assert process.wait(timeout=120) == 0
+    lines = terminal_lines(raw.decode())
+    header = next(line for line in lines if "analysis Msamples/s" in line)
+    assert header.split() == ["M", "R", "M/D", "analysis", "Msamples/s", "analysis", "/", "FFT", "synthesis",
+                              "Msamples/s", "synthesis", "/", "IFFT", "model", "1+R/log2", "M"]
+
+
+def test_numbers_for_people_never_read_like_6_355e05_or_minus_zero():
+    """Tables print large rates with SI prefixes, and a value that rounds to zero as 0."""
+    from bandloom.blocks.text_tables import format_value, render_pairs
+    assert format_value(635_500.0) == "635.5 k" and format_value(-0.00001) == "-10 µ"
+    assert format_value(-0.00004) != "-0.0000" and format_value(-0.0) == "0"
+    assert render_pairs([("rate", 2.4e6, "Hz")]) == "rate  2.4 MHz"

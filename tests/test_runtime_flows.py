@@ -284,10 +284,11 @@ def test_status_display_only_on_a_terminal(tmp_path):
         return b"".join(chunks).decode(errors="replace")
 
     shown = run()
-    assert "block" in shown and "rate/s" in shown and "queue" in shown and "keep[1]" in shown
+    assert "block" in shown and "rate" in shown and "queue" in shown and "keep[1]" in shown
+    assert "ksps" in shown                                   # rates for people: 20 ksps, never 2e+04
     assert "] " in shown and "%" in shown                     # the source's progress bar
     quiet = run("--quiet")
-    assert "rate/s" not in quiet
+    assert "queue" not in quiet and "sps" not in quiet
 
 
 def test_dead_block_is_named_and_run_fails(tmp_path):
