@@ -145,3 +145,26 @@ def test_compare_block_finds_an_unknown_delay(tmp_path):
     assert figures["gain_db"] == pytest.approx(20 * np.log10(0.5), abs=1e-4)
     assert figures["phase_degrees"] == pytest.approx(90, abs=1e-3)
     assert figures["error_after_gain_and_phase_db"] < -120 and not figures["pass"]
+
+
+def test_roundtrip_of_a_flow_that_merges_a_few_channels_tests_those_channels(tmp_path):
+    """A flow linking channels 3..6 of 16 to its synthesis: roundtrip --flow runs exactly those through the
+    processes and judges the channels between the outer two (4 and 5), where a group reconstructs exactly;
+    they meet -100 dB. The merged group's outer halves and the channels left out do not (about 0 dB), which
+    is why they are not judged."""
+    text = (FLOWS / "round-trip.toml").read_text().replace("channels = 64", "channels = 16")
+    text = text.replace('from = "split.channels"\nto = "merge.channels"',
+                        'from = "split.channels"\nto = "merge.channels"\nselect = "3..6"')
+    assert 'select = "3..6"' in text
+    flow = tmp_path / "narrow.toml"
+    flow.write_text(text)
+    done = bandloom("roundtrip", "--flow", flow, "--json", "--signals", "noise,comb", timeout=300)
+    assert done.returncode == 0, done.stderr
+    report = json.loads(done.stdout)
+    assert report["channels_merged"] == [3, 4, 5, 6] and report["channels_judged"] == [4, 5]
+    assert report["pass"]
+    for signal in report["signals"]:
+        assert signal["error_db"] <= -100
+        assert max(signal["band_error_db"][c] for c in (4, 5)) == signal["error_db"]
+        assert min(signal["band_error_db"][c] for c in (0, 1, 9, 12)) > -20      # not merged: not reconstructed
+        assert signal["whole_band_error_db"] > -20
