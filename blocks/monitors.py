@@ -125,6 +125,10 @@ class Activity(Block):
         return lines
 
 
+#: The most channel edges the waterfall draws as lines; with more, lines every few pixels would hide the band.
+MAX_GRID_LINES = 128
+
+
 class Waterfall(Block):
     type_name = "waterfall"
     summary = "Draw the band's spectrum over time as a PNG, with the channel grid and activity marked."
@@ -208,7 +212,9 @@ class Waterfall(Block):
             if since is None:
                 continue
             while True:
-                first, last = int(since / self.bin_seconds), max(int(np.ceil(event.time / self.bin_seconds)), 1)
+                # the event times are whole intervals: 0.6 / 0.05 is 11.999999999999998, which is bin 12
+                first = int(np.floor(since / self.bin_seconds + 1e-9))
+                last = max(int(np.ceil(event.time / self.bin_seconds - 1e-9)), 1)
                 if last <= self.params["rows"]:
                     break
                 self._fold_bins()
@@ -286,7 +292,7 @@ class Waterfall(Block):
         if cs is not None and self.detector is not None:
             spacing = cs.channel_spacing
             edges = sorted({round(f - spacing / 2, 3) for f in cs.channel_frequencies})
-            for edge in edges:
+            for edge in edges if len(edges) <= MAX_GRID_LINES else ():     # beyond that the grid hides the band
                 ax.axvline(edge / 1e6, color="white", alpha=0.25, linewidth=0.6)
             step = self.bin_seconds
             for c, f in enumerate(cs.channel_frequencies):
@@ -300,11 +306,20 @@ class Waterfall(Block):
                                                (i - start) * step, fill=False, edgecolor="orange", linewidth=1.2))
                         start = None
         ax.set_xlim(lo, hi)
+        if cs is not None:
+            # channel numbers along the top, at their centres; at most about 16 labels however many channels
+            order = sorted(zip(cs.channel_frequencies, cs.channels))
+            step_label = max(1, int(np.ceil(len(order) / 16)))
+            shown = [order[i] for i in range(0, len(order), step_label)]
+            top_axis = ax.secondary_xaxis("top")
+            top_axis.set_xticks([f / 1e6 for f, _ in shown], [str(k) for _, k in shown])
+            top_axis.set_xlabel("channel (FFT order)")
         ax.set_xlabel("frequency (MHz)")
         ax.set_ylabel("time (s)")
         title = self.params["title"] or f"{self.context.name}: {format_frequency(centre)}, " \
                                          f"{format_frequency(rate)} wide"
-        ax.set_title(title + ("\nchannel grid in white, detected activity in orange" if cs is not None else ""))
+        grid = "channel grid in white, " if cs is not None and cs.width <= MAX_GRID_LINES else ""
+        ax.set_title(title + (f"\n{grid}detected activity in orange" if cs is not None else ""))
         fig.tight_layout()
         self.path, handle = self.open_output(self.params["path"])
         with handle:

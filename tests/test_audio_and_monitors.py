@@ -115,3 +115,35 @@ def test_activity_detector_events_with_hysteresis_and_minimum_duration(rng):
     summary = detector.summary()
     assert summary[3]["duty_cycle"] == pytest.approx(1 / 3, abs=0.01)
     assert summary[0]["duty_cycle"] == 0 and summary[5]["duty_cycle"] == 0
+
+
+def test_waterfall_boxes_start_and_end_where_the_detector_dates_the_burst(tmp_path):
+    """A burst on from 0.6 s to 1.0 s (the end of the stream) in one of 8 channels: the boxes cover exactly
+    0.60-1.00 s (0.6 / 0.05 is 11.999999999999998 in floating point: the box must not start an interval
+    early), and one from 0.2 s to 0.5 s exactly 0.20-0.50 s."""
+    from pathlib import Path as _Path
+
+    from bandloom.blocks.block import BlockContext, Chunk, StreamInfo
+    from bandloom.blocks.monitors import Waterfall
+    params = {p.name: p.default for p in Waterfall.parameters if not p.required}
+    params.update(path="w.png")
+    block = Waterfall(params, BlockContext("w", _Path("x.toml"), tmp_path))
+    rate, width = 50_000.0, 8
+    channels = StreamInfo("channels", "cf32", rate, 1e8, channels=tuple(range(width)),
+                          channel_frequencies=tuple(1e8 + np.fft.fftfreq(width) * width * rate / 2),
+                          channel_count=width, channel_spacing=rate / 2)
+    band = StreamInfo("samples", "cf32", width * rate / 2, 1e8)
+    block.output_streams({"samples": band, "channels": channels})
+    block.start({"samples": band, "channels": channels})
+    rng = np.random.default_rng(1)
+    t = np.arange(int(rate)) / rate
+    x = ((rng.standard_normal((len(t), width)) + 1j * rng.standard_normal((len(t), width))) * 1e-3).astype(np.complex64)
+    x[(t >= 0.2) & (t < 0.5), 3] += 0.1
+    x[t >= 0.6, 5] += 0.1
+    for i in range(0, len(t), 5000):
+        block.consume("channels", Chunk(x[i:i + 5000], i))
+    block.finish()
+    for column, (start, stop) in ((3, (0.2, 0.5)), (5, (0.6, 1.0))):
+        on = np.nonzero(block.bins[:, column])[0]
+        assert on.min() * block.bin_seconds == pytest.approx(start)
+        assert (on.max() + 1) * block.bin_seconds == pytest.approx(stop)
