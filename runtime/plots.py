@@ -32,29 +32,32 @@ def design_picture(design: BankDesign, path: str | Path, measured: ToneMeasureme
     level = 20 * np.log10(np.maximum(np.abs(response), 1e-12))
     span = min(design.channels / 2, 4.0)
     keep = np.abs(offsets) <= span
-    fig, (top, bottom) = plt.subplots(2, 1, figsize=(10, 8.5), dpi=100)
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(13, 8.5), dpi=100)
     top.plot(offsets[keep], level[keep], color="tab:blue", linewidth=1.2, label="computed from the taps")
     if measured is not None:
         near = np.abs(measured.offsets) <= span
         top.plot(measured.offsets[near], measured.level_db[near], ".", markersize=2.5, color="tab:red",
                  label="measured with tones (complex64 bank)")
-        top.legend(loc="upper right")
     for edge in np.arange(-np.floor(span) - 0.5, span + 0.51, 1.0):
         top.axvline(edge, color="grey", alpha=0.35, linewidth=0.8)
-    top.axhline(-f["adjacent_rejection_db"], color="tab:orange", linestyle="--", linewidth=1)
+    top.axhline(-f["adjacent_rejection_db"], color="tab:orange", linestyle="--", linewidth=1,
+                label="adjacent-channel rejection")
+    top.legend(loc="lower center", bbox_to_anchor=(0.5, -0.3), ncol=3, frameon=False)
     top.set_ylim(max(level[keep].min(), -180), 5)
     top.set_xlim(-span, span)
     top.set_xlabel("frequency from the channel centre (channel spacings; grey: channel edges)")
     top.set_ylabel("response (dB)")
     top.set_title(f"{design.channels} channels, decimation {design.decimation} ({design.shape}, "
                   f"{f['taps']} taps = {f['taps_per_branch']:.2f} per branch)")
-    text = (f"adjacent-channel rejection {f['adjacent_rejection_db']:.1f} dB\n"
-            f"flat-part ripple {f['passband_ripple_db']:.3f} dB (|f| <= {f['passband_edge']:.2f})\n"
-            f"-3 dB edge {f['edge_3db']:.3f}, scalloping {f['scalloping_loss_db']:.2f} dB\n"
-            f"ENBW {f['enbw_bins']:.3f} bins, round trip {f['round_trip_error_db']:.1f} dB\n"
-            f"cost {f['cost_ratio']:.2f} x bare FFT (1 + R/log2 M)")
-    top.text(0.01, 0.03, text, transform=top.transAxes, fontsize=9, family="monospace",
-             bbox=dict(facecolor="white", alpha=0.85, edgecolor="grey"))
+    text = "\n".join([
+        f"adjacent-channel rejection {f['adjacent_rejection_db']:.1f} dB",
+        f"flat-part ripple {f['passband_ripple_db']:.3f} dB (|f| <= {f['passband_edge']:.2f})",
+        f"-3 dB edge {f['edge_3db']:.3f}", f"scalloping {f['scalloping_loss_db']:.2f} dB",
+        f"ENBW {f['enbw_bins']:.3f} bins", f"round trip {f['round_trip_error_db']:.1f} dB",
+        f"cost {f['cost_ratio']:.2f} x bare FFT (1 + R/log2 M)"])
+    # beside the plots, never over a curve or a measured point
+    fig.text(0.755, 0.96, "figures of the design\n\n" + text, fontsize=9, family="monospace",
+             va="top", bbox=dict(facecolor="white", edgecolor="grey"))
     # a channel and its neighbours, linear power, to show how they overlap
     near = np.abs(offsets) <= 3.0
     for k, colour in zip((-2, -1, 0, 1, 2), ("0.6", "0.35", "tab:blue", "0.35", "0.6")):
@@ -66,8 +69,8 @@ def design_picture(design: BankDesign, path: str | Path, measured: ToneMeasureme
     bottom.set_xlabel("frequency (channel spacings)")
     bottom.set_ylabel("power response")
     bottom.set_title("channel 0 (blue) over its neighbours")
-    bottom.legend(loc="upper right")
-    fig.tight_layout()
+    bottom.legend(loc="lower center", bbox_to_anchor=(0.5, -0.32), frameon=False)
+    fig.tight_layout(rect=(0, 0, 0.75, 1))
     fig.savefig(path)
     plt.close(fig)
 
@@ -85,9 +88,11 @@ def round_trip_picture(results: list[SignalResult], design_label: str, path: str
         ax.set_ylabel("dB")
         ax.set_ylim(-200, 5)
         ax.set_title(f"{r.signal}: error {r.error_db:.1f} dB, delay {r.delay}", fontsize=10)
-        ax.legend(loc="lower right", fontsize=8)
     axes[-1].set_xlabel("frequency (channel spacings from the band centre)")
     fig.suptitle(f"round trip error spectrum: {design_label}")
-    fig.tight_layout()
+    handles, labels = axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="upper center", bbox_to_anchor=(0.5, 0.975), ncol=2, fontsize=9,
+               frameon=False)                          # under the title, above the panels, never on the data
+    fig.tight_layout(rect=(0, 0, 1, 0.955))
     fig.savefig(path)
     plt.close(fig)
