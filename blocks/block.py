@@ -201,6 +201,7 @@ class BlockContext:
     placeholders: dict[str, Any] = field(default_factory=dict)
     restart: int = 0
     resumed_at: dict[str, int] = field(default_factory=dict)
+    design_folder: Path | None = None     # banks designed already, to load instead of designing again
 
     def input_path(self, text: str) -> Path:
         """A path from the flow file: relative to the flow file's folder."""

@@ -31,7 +31,8 @@ class Channelizer(Block):
     outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
 
     def _design(self) -> BankDesign:
-        return make_design(self.params["channels"], self.params["oversample"], self.params)
+        return make_design(self.params["channels"], self.params["oversample"], self.params,
+                           folder=self.context.design_folder)
 
     def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         design = self._design()
@@ -94,7 +95,7 @@ class Synthesis(Block):
                 knobs[key] = self.params[key]
         if not stream.channel_count:
             raise BlockError("the input does not come from a channelizer", port="channels")
-        return make_design(stream.channel_count, knobs.get("oversample") or 2, knobs)
+        return make_design(stream.channel_count, knobs.get("oversample") or 2, knobs, folder=self.context.design_folder)
 
     def output_streams(self, inputs: dict[str, StreamInfo]) -> dict[str, StreamInfo]:
         stream = inputs["channels"]

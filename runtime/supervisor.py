@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import zmq
+from bandloom.blocks._bank_params import save_designs
 
 from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent, next_state
 from .flow import FailurePolicy, Flow, Instance, Link, OnFailure
@@ -155,7 +156,7 @@ class Supervisor:
             name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
             flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,
             outputs=outputs, control=f"ipc://{self.folder}/control", stats=f"ipc://{self.folder}/stats",
-            restart=record.restarts if record else 0)
+            restart=record.restarts if record else 0, design_folder=self.folder)
 
     def start_worker(self, inst: Instance, spec: WorkerSpec) -> subprocess.Popen:
         spec_path = os.path.join(self.folder, f"spec-{self.workers_started}.json")   # in flow order; restarts after
@@ -173,6 +174,7 @@ class Supervisor:
     def run(self) -> RunOutcome:
         folder = self.folder = tempfile.mkdtemp(prefix="bandloom-")          # created with mode 0700
         os.chmod(folder, 0o700)
+        save_designs(folder)            # the banks the check designed: workers load them, not design again
         context = zmq.Context()
         control = context.socket(zmq.PUB)
         control.setsockopt(zmq.LINGER, 0)

@@ -144,7 +144,7 @@ class Worker:
         if cls is None:
             raise RuntimeError(f"block type {spec.type_name!r} is not installed here")
         context = BlockContext(self.name, Path(spec.flow_path), Path(spec.output_dir), spec.placeholders,
-                               restart=spec.restart,
+                               restart=spec.restart, design_folder=Path(spec.design_folder) if spec.design_folder else None,
                                resumed_at={port: link.resume_index for port, link in spec.inputs.items()
                                            if link.resume_index is not None})
         block = self.block = cls(spec.params, context)

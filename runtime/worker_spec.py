@@ -81,6 +81,7 @@ class WorkerSpec:
     control: str
     stats: str
     restart: int = 0                 # instances of this block before this one
+    design_folder: str | None = None  # where the supervisor saved the banks it designed (see blocks._bank_params)
     placeholders: dict[str, Any] = field(default_factory=dict)
     inputs: dict[str, LinkSpec] = field(default_factory=dict)
     outputs: dict[str, list[LinkSpec]] = field(default_factory=dict)

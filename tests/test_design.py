@@ -98,3 +98,23 @@ def test_bad_design_knobs_are_named(kwargs, message):
     """Bad knobs raise ValueError naming the knob and the rule."""
     with pytest.raises(ValueError, match=message):
         design_bank(**kwargs)
+
+
+def test_a_design_handed_over_as_a_file_is_the_same_design(tmp_path, monkeypatch):
+    """What the supervisor saves into a run's folder, a worker loads without designing again: the same taps,
+    delay and knobs bit for bit (design_bank is made to fail in the 'worker' to prove it is not called)."""
+    from bandloom.blocks import _bank_params
+    knobs = {"shape": None, "taps_per_branch": 12, "rolloff": None, "stopband_db": None, "window": "kaiser",
+             "tight_margin": None}
+    made = _bank_params.make_design(32, 2, knobs)
+    _bank_params.save_designs(tmp_path)
+    monkeypatch.setattr(_bank_params, "_DESIGNS", {})
+    monkeypatch.setattr(_bank_params, "design_bank", lambda *a, **k: (_ for _ in ()).throw(AssertionError("designed")))
+    loaded = _bank_params.make_design(32, 2, knobs, folder=tmp_path)
+    assert np.array_equal(loaded.analysis_taps, made.analysis_taps)
+    assert np.array_equal(loaded.synthesis_taps, made.synthesis_taps)
+    assert (loaded.delay, loaded.decimation, loaded.taps_per_branch, loaded.shape) == \
+        (made.delay, made.decimation, made.taps_per_branch, made.shape)
+    other = dict(knobs, taps_per_branch=10)                  # different knobs: not taken for the saved one
+    with pytest.raises(AssertionError, match="designed"):
+        _bank_params.make_design(32, 2, other, folder=tmp_path)
