@@ -11,7 +11,10 @@
 * A message carries at most :data:`MESSAGE_BYTES` of samples: a larger chunk is
   split across messages by rows, so every socket's ``MAXMSGSIZE`` (the
   same cap, plus the header's limit) is one the link can always honour and
-  nothing is ever refused by the transport uncounted.
+  nothing is ever refused by the transport uncounted. A link with a long
+  queue gets smaller messages, so that ``queue`` messages hold at most
+  :data:`QUEUE_BYTES` at each end: memory is bounded in bytes whatever
+  ``queue`` says.
 * A consumer that is down (restarting, or left down by its ``on_failure``):
   the supervisor says ``detach``; until ``attach``, what the outlet would
   send it is dropped and counted (``down_rows``), never waited for, and an
@@ -46,9 +49,10 @@ from .flow.model import WhenFull
 from .keys import load_server_keys
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet", "configure", "secure_server"]
+__all__ = ["Aborted", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet", "QUEUE_BYTES", "configure", "secure_server"]
 
 MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
+QUEUE_BYTES = 256 << 20                       # samples a link's queue holds at each end, bytes at most
 POLL_MS = 200
 
 
@@ -140,7 +144,9 @@ class Outlet(_LinkEnd):
         self.when_full = spec.when_full
         self.should_abort = should_abort
         self._open(context, spec)
-        self.rows_per_message = max(1, MESSAGE_BYTES // (self.stream.width * self.stream.dtype.itemsize))
+        # a long queue gets smaller messages, so that queue x message stays within QUEUE_BYTES
+        message_bytes = min(MESSAGE_BYTES, QUEUE_BYTES // max(1, spec.queue))
+        self.rows_per_message = max(1, message_bytes // (self.stream.width * self.stream.dtype.itemsize))
         self.next_index = spec.resume_index or 0    # index after the last row sent
         self.offered_index = self.next_index        # index after the last row offered, sent or dropped
         self.seq = spec.resume_seq

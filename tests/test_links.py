@@ -132,6 +132,22 @@ def test_a_chunk_larger_than_the_message_cap_is_split_by_rows(ends):
     assert outlet.stats().rows == inlet.stats().rows == n and inlet.stats().missing == 0
 
 
+def test_a_long_queue_gets_messages_small_enough_to_bound_its_bytes(ends):
+    """queue = 100,000 messages: each message holds at most QUEUE_BYTES / queue of samples, so a full queue
+    holds at most QUEUE_BYTES (256 MiB) at each end, not 100,000 x 8 MiB; every row still arrives once."""
+    from bandloom.runtime.links import QUEUE_BYTES
+    outlet, inlet = ends(queue=100_000)
+    data = np.arange(100_000, dtype=np.float32).astype(np.complex64)
+    outlet.send(Chunk(data, 0))
+    outlet.end()
+    parts = []
+    while (chunk := inlet.receive()) is not None:
+        assert chunk.data.nbytes * 100_000 <= QUEUE_BYTES
+        parts.append(chunk.data)
+    assert np.array_equal(np.concatenate(parts), data)
+    assert len(parts) == -(-data.nbytes // (QUEUE_BYTES // 100_000 // 8 * 8))
+
+
 def test_the_receiver_counts_rows_a_sender_skipped_without_saying_so(ends):
     """A forged or faulty sender whose header says nothing is missing, while its index jumps: the receiver
     counts the gap from the index itself; an index going backwards is refused, naming the message."""
