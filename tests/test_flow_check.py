@@ -86,3 +86,24 @@ def test_signed_channel_numbers_and_frequency_ranges_pick_the_channels_numpy_fft
     assert picked(-1) == [15]
     inside = [int(k) for k in np.argsort(centres) if 99.75e6 <= centres[k] <= 100.25e6]
     assert picked("99.75 MHz..100.25 MHz") == inside == [14, 15, 0, 1, 2]
+
+
+def test_rest_takes_every_channel_no_other_link_takes():
+    """select = "rest": the channels of the output that no other link or per-channel rule takes (here the 16
+    channels less 0..3 and the link's 14, 15); a second "rest" on one output, or nothing left, is a problem."""
+    from bandloom.runtime.flow import FlowErrors, check_flow
+    from bandloom.runtime.plugins import load_registry
+    registry = load_registry()
+    flow = _per_channel_flow("0..3")
+    flow["blocks"]["others"] = {"type": "discard", "per_channel": {"from": "split.channels", "select": "rest"}}
+    flow["blocks"]["pair"] = {"type": "discard"}
+    flow["links"].append({"from": "split.channels", "select": [14, 15], "to": "pair.samples"})
+    made = check_flow(flow, registry, path="rest.toml")
+    rest = sorted(i.placeholders["channel"] for i in made.instances.values() if i.declared == "others")
+    assert rest == list(range(4, 14))
+    flow["blocks"]["keep"]["per_channel"]["select"] = "rest"
+    with pytest.raises(FlowErrors, match='takes "rest" of split.channels too; only one may'):
+        check_flow(flow, registry, path="rest.toml")
+    flow["blocks"]["keep"]["per_channel"]["select"] = "all"
+    with pytest.raises(FlowErrors, match='no channel of split.channels is left for "rest"'):
+        check_flow(flow, registry, path="rest.toml")

@@ -20,7 +20,7 @@ from bandloom.blocks.block import BlockContext, BlockError, Port, StreamInfo
 from .declarations import TOLERANCE, Declaration, RawLink, parse_port_ref
 from .graph import FlowCycle, producer_order
 from .model import Instance, Link, LinkOptions
-from .problems import KeyPath, ProblemLog, did_you_mean, known_names
+from .problems import KeyPath, ProblemLog, did_you_mean, format_key_path, known_names
 from .selection import SelectionError, resolve_selection
 
 __all__ = ["check_inputs", "expand", "wiring_order"]
@@ -115,22 +115,69 @@ def accepts(log: ProblemLog, at: KeyPath, port: Port, stream: StreamInfo, descri
     return True
 
 
+#: A selection that takes every channel of an output no other link or per-channel rule takes.
+REST = "rest"
+
+
 class _Expander:
-    def __init__(self, log: ProblemLog, decls: dict[str, Declaration], flow_path: Path, output_dir: Path) -> None:
+    def __init__(self, log: ProblemLog, decls: dict[str, Declaration], flow_path: Path, output_dir: Path,
+                 raw_links: list[RawLink]) -> None:
         self.log = log
         self.decls = decls
+        self.raw_links = raw_links
         self.flow_path = flow_path
         self.output_dir = output_dir
         self.instances: dict[str, Instance] = {}
         self.links: list[Link] = []
         self.made: dict[str, list[str]] = {}          # declared name -> its instance names
 
-    def selection(self, at: KeyPath, select: Any, stream: StreamInfo, tolerance: float | None) -> list[int] | None:
+    def selection(self, at: KeyPath, select: Any, stream: StreamInfo, tolerance: float | None,
+                  source: tuple[str, str]) -> list[int] | None:
+        if select == REST:
+            return self.rest(at, stream, source)
         try:
             return resolve_selection(select, stream, tolerance)
         except SelectionError as error:
             self.log.add(at, str(error))
             return None
+
+    def others_from(self, source: tuple[str, str], at: KeyPath) -> list[tuple[KeyPath, Any, float | None]]:
+        """(where, select, tolerance) of every other link and per-channel rule that takes from ``source``."""
+        found = []
+        for raw in self.raw_links:
+            where: KeyPath = ("links", raw.index, "select")
+            if (raw.source, raw.source_port) == source and where != at:
+                found.append((where, raw.select, raw.options.tolerance))
+        for name, decl in self.decls.items():
+            where = ("blocks", name, "per_channel")
+            rule = decl.per_channel
+            if rule is not None and parse_port_ref(rule.get("from")) == source and where != at:
+                try:
+                    tolerance = TOLERANCE.convert(rule["tolerance"]) if "tolerance" in rule else None
+                except ValueError:
+                    tolerance = None
+                found.append((where, rule.get("select"), tolerance))
+        return found
+
+    def rest(self, at: KeyPath, stream: StreamInfo, source: tuple[str, str]) -> list[int] | None:
+        """Columns of ``stream`` that no other selection from ``source`` takes (their own problems are
+        reported where they are written)."""
+        taken: set[int] = set()
+        for where, select, tolerance in self.others_from(source, at):
+            if select == REST:
+                self.log.add(at, f"{format_key_path(where)} takes \"{REST}\" of {source[0]}.{source[1]} too; only "
+                             f"one may")
+                return None
+            try:
+                taken.update(resolve_selection(select, stream, tolerance))
+            except SelectionError:
+                continue
+        columns = [c for c in range(len(stream.channels)) if c not in taken]
+        if not columns:
+            self.log.add(at, f"no channel of {source[0]}.{source[1]} is left for \"{REST}\": the other links "
+                         f"take all {len(stream.channels)}")
+            return None
+        return columns
 
     def source_stream(self, link: RawLink) -> tuple[str, StreamInfo, tuple[int, ...] | None] | None:
         """(source instance, stream after the link's selection, selected columns) or None with a problem."""
@@ -151,7 +198,8 @@ class _Expander:
             self.log.add(("links", link.index, "select"), f"{link.source}.{link.source_port} carries one "
                          f"stream, not channels; there is nothing to select")
             return None
-        columns = self.selection(("links", link.index, "select"), link.select, stream, link.options.tolerance)
+        columns = self.selection(("links", link.index, "select"), link.select, stream, link.options.tolerance,
+                                 (link.source, link.source_port))
         if columns is None:
             return None
         return src, stream.select(columns), tuple(columns)
@@ -191,7 +239,7 @@ class _Expander:
                 tolerance = TOLERANCE.convert(decl.per_channel["tolerance"])
             except ValueError as error:
                 self.log.add(at, str(error))
-        columns = self.selection(at, decl.per_channel.get("select"), stream, tolerance)
+        columns = self.selection(at, decl.per_channel.get("select"), stream, tolerance, ref)
         for c in columns or []:
             channel, hz = stream.channels[c], stream.channel_frequencies[c]
             placeholders = {"channel": channel, "frequency": int(round(hz)), "frequency_mhz": hz / 1e6}
@@ -279,7 +327,7 @@ def expand(log: ProblemLog, decls: dict[str, Declaration], links: list[RawLink],
            flow_path: Path, output_dir: Path, max_processes: int) -> tuple[dict[str, Instance], list[Link]]:
     """Instances (producers first) and links; problems found on the way go to ``log``. Expansion stops at
     ``max_processes`` instances (a per-channel block could otherwise make thousands)."""
-    expander = _Expander(log, decls, flow_path, output_dir)
+    expander = _Expander(log, decls, flow_path, output_dir, links)
     for name in order:
         decl = decls[name]
         expander.made[name] = []

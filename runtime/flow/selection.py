@@ -8,7 +8,9 @@ frequency with its unit (``"156.8 MHz"``), which picks the channel whose
 centre is nearest, within a tolerance (default 5 % of the channel spacing),
 or a frequency range (``"156.0 MHz..156.4 MHz"``: every channel whose centre
 lies inside it, lowest first). The result is a list of column positions in
-the stream's channels, in the order given.
+the stream's channels, in the order given. (``"rest"``, every channel no
+other selection from the same output takes, needs the whole flow and is
+resolved in :mod:`.expansion`.)
 """
 
 from __future__ import annotations
