@@ -18,6 +18,7 @@ from typing import TextIO
 from bandloom import __version__
 
 from . import bench_command, design_command, flow_commands, verify_commands
+from .terminal import progress
 
 __all__ = ["UsageError", "build_parser", "entry_point", "main"]
 
@@ -29,19 +30,11 @@ class UsageError(Exception):
     """A problem with what the user asked for; printed as one line, exit status 2."""
 
 
-def _progress(message: str) -> None:
-    """One progress line on a terminal, redrawn in place; "" clears it (before results are written)."""
-    if sys.stderr.isatty():
-        sys.stderr.write(f"\r\x1b[K{message}")
-        sys.stderr.flush()
-
-
 def _run_bench(args: argparse.Namespace, out: TextIO) -> int:
     try:
-        return bench_command.run(args, out, progress=_progress)
+        return bench_command.run(args, out, progress=progress)
     finally:
-        if sys.stderr.isatty():
-            sys.stderr.write("\r\x1b[K")
+        progress("")
 
 
 #: name -> (adds its arguments, runs it, one line of help)

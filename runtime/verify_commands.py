@@ -31,6 +31,7 @@ from bandloom.blocks.text_tables import render_rows
 from .design_command import add_design_arguments, design_from_args
 from .flow import FlowErrors, check_flow, load_flow
 from .plugins import load_registry
+from .terminal import progress
 
 __all__ = [
     "add_quality_arguments", "add_roundtrip_arguments", "measurement_flow", "round_trip_through_processes",
@@ -185,13 +186,19 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
     if target is None:
         design = design_from_args(args)
         label = f"design M={design.channels} D={design.decimation} ({design.shape})"
-        results = round_trip_in_process(design, signals, frames=args.frames)
+        results = []
+        for number, signal in enumerate(signals, 1):
+            progress(f"roundtrip: {signal} ({number} of {len(signals)}) through M={design.channels}")
+            results += round_trip_in_process(design, [signal], frames=args.frames)
+        progress("")
         where = "in process"
     else:
         design = target.design
         label = target.label
+        progress(f"roundtrip: {', '.join(signals)} through the flow's blocks as processes")
         with tempfile.TemporaryDirectory(prefix="bandloom-roundtrip-") as folder:
             results, processes = round_trip_through_processes(target, signals, args.frames, folder)
+        progress("")
         where = f"through {processes} block processes"
     selected = target.selected if target is not None else None
     judged = interior_channels(selected, design.channels) if selected is not None else None
