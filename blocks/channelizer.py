@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -76,12 +76,31 @@ class Channelizer(Block):
         return self.bank.frames_produced
 
 
+@dataclass(frozen=True)
+class _Group:
+    """A group of adjacent channels merged by a bank of its own: ``channels`` = the group's width times the
+    oversampling, ``rate`` its output rate (Hz), ``centre`` the RF frequency of the group's centre (midway
+    between its outer channels), ``positions`` each input column's channel in the group's bank (0 = the
+    group's middle channel), ``offset`` the centre's distance above that channel's centre (Hz)."""
+
+    channels: int
+    rate: float
+    centre: float
+    positions: tuple[int, ...]
+    offset: float
+    design: BankDesign
+
+
 class Synthesis(Block):
     type_name = "synthesis"
     summary = "Merge channels from a channelizer back into one wideband stream (polyphase synthesis)."
     parameters = (
         Param("oversample", "int", "must match the channelizer; default: the channelizer's",
               default=None, minimum=1, maximum=64),
+        Param("output", "choice", "'band': the channelizer's whole input band at its rate; 'group': only the "
+              "linked channels, which must be adjacent, at the group's own rate (channels x oversample channel "
+              "spacings) and centred on the group, from a bank of that size", default="band",
+              choices=("band", "group")),
     ) + tuple(replace(p, doc=p.doc.split(" (default")[0] + " (default: the channelizer's)", default=None)
               for p in DESIGN_PARAMS)
     inputs = (Port("channels", "channels", "channels from a channelizer; missing channels count as silence"),)
@@ -111,16 +130,50 @@ class Synthesis(Block):
                              f"{format_frequency(band_rate / design.decimation)} (the channelizer's "
                              f"oversample is {stream.design.get('oversample')}); leave oversample out to match it",
                              param="oversample")
+        if self.params.get("output") == "group":
+            group = self._group(stream, design)
+            return {"samples": StreamInfo("samples", "cf32", group.rate, group.centre, start_time=stream.start_time,
+                                          design={"round_trip_delay": design.delay * group.channels
+                                                  // design.channels})}
         return {"samples": StreamInfo("samples", "cf32", stream.sample_rate * design.decimation,
                                       stream.centre_frequency, start_time=stream.start_time,
                                       design={"round_trip_delay": design.delay})}
 
+    def _group(self, stream: StreamInfo, design: BankDesign) -> _Group:
+        """The bank that merges the linked channels on their own (see :class:`_Group`)."""
+        m, p = design.channels, design.oversampling
+        if p < 2:
+            raise BlockError("output = \"group\" needs an oversampled channelizer (oversample >= 2): a critically "
+                             "sampled bank does not reconstruct exactly", param="output")
+        signed = sorted((k + m // 2) % m - m // 2 for k in stream.channels)
+        if signed != list(range(signed[0], signed[0] + len(signed))):
+            raise BlockError(f"output = \"group\" merges adjacent channels; the link brings channels "
+                             f"{', '.join(str(k % m) for k in signed)}, which have gaps between them", param="output")
+        size = len(signed) * p
+        middle = signed[len(signed) // 2]
+        knobs = {k: stream.design.get(k) for k in DESIGN_KEYS}
+        knobs.update({k: self.params[k] for k in DESIGN_KEYS if self.params.get(k) is not None})
+        spacing = stream.channel_spacing
+        frequency = dict(zip(stream.channels, stream.channel_frequencies))
+        centre = (frequency[signed[0] % m] + frequency[signed[-1] % m]) / 2
+        return _Group(channels=size, rate=spacing * size, centre=centre,
+                      positions=tuple(((k + m // 2) % m - m // 2 - middle) % size for k in stream.channels),
+                      offset=(centre - frequency[middle % m]),
+                      design=make_design(size, p, knobs, folder=self.context.design_folder))
+
     def start(self, inputs: dict[str, StreamInfo]) -> None:
         stream = inputs["channels"]
         self.design = self._design(stream)
-        self.bank = self.design.synthesis_bank()
         self.columns = np.asarray(stream.channels)
         self.shift = (stream.design.get("grid_offset") or 0.0) / (stream.sample_rate * self.design.decimation)
+        if self.params.get("output") == "group":
+            group = self._group(stream, self.design)
+            # the group's bank: its channel 0 is the group's middle channel; then the output moves down by
+            # the offset of the group's centre from that channel's centre
+            self.design = group.design
+            self.columns = np.asarray(group.positions)
+            self.shift = -group.offset / group.rate
+        self.bank = self.design.synthesis_bank()
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         out = []

@@ -107,6 +107,7 @@ def measurement_flow(target: _FlowBank, signals: list[str]) -> dict[str, Any]:
     links: list[dict[str, Any]] = []
     split_params = _without_unset(target.split.params)
     merge_params = _without_unset(target.merge.params) if target.merge else {}
+    merge_params["output"] = "band"     # a group's own-rate output holds the same channels; compare at full rate
     for name in signals:
         blocks[f"{name}-in"] = {"type": "iq-reader", "path": f"{name}.cf32", "sample_rate": target.rate,
                                 "centre_frequency": target.centre, "metadata": "none"}
