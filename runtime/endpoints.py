@@ -98,8 +98,7 @@ class EndpointOutlet(Outlet):
 
     def _refuse(self, identity: bytes, reason: str) -> None:
         self.refused += 1
-        header = wire.encode_header(seq=0, first_index=0, count=0, flags=wire.FLAG_REFUSED, reason=reason,
-                                    **self._fixed)
+        header = self._header.encode(seq=0, first_index=0, count=0, flags=wire.FLAG_REFUSED, reason=reason)
         try:
             self.sock.send_multipart([identity, header, b""], flags=zmq.NOBLOCK)
         except zmq.ZMQError:

@@ -167,6 +167,7 @@ class Outlet(_LinkEnd):
                            centre_frequency=s.centre_frequency, width=s.width)
         if s.channels:
             self._fixed.update(channels=list(s.channels), channel_frequencies=list(s.channel_frequencies))
+        self._header = wire.HeaderTemplate(**self._fixed)     # the constant part packed once
 
     def _open(self, context: zmq.Context, spec: LinkSpec) -> None:
         keys = spec.keys if spec.bind else None
@@ -215,8 +216,8 @@ class Outlet(_LinkEnd):
             raise RuntimeError(f"link {self.spec.label}: chunk starts at {chunk.first_index}, before "
                                f"the {self.next_index} rows already sent")
         flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity or self.restarted) else 0
-        header = wire.encode_header(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
-                                    dropped=gap, **self._fixed)
+        header = self._header.encode(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
+                                    dropped=gap)
         if not self.attached or not self._send([header, data], droppable=self.when_full is WhenFull.DROP,
                                                seq=self.seq, rows=count):
             self.dropped_rows += count
@@ -255,8 +256,8 @@ class Outlet(_LinkEnd):
     def _send_end(self) -> None:
         gap = max(0, max(self.final_index or 0, self.offered_index) - self.next_index)
         flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap or self.restarted else 0)
-        header = wire.encode_header(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
-                                    dropped=gap, **self._fixed)
+        header = self._header.encode(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
+                                    dropped=gap)
         self._send([header, b""], droppable=False, seq=self.seq, rows=0)
         self.missing_rows += gap
         self.discontinuities += bool(gap)
