@@ -7,6 +7,7 @@ The text is scanned once for table headers (``[blocks.split]``,
 from __future__ import annotations
 
 import re
+import tomllib
 
 from .problems import KeyPath
 
@@ -31,8 +32,18 @@ def _header(line: str) -> tuple[bool, tuple[str, ...]] | None:
     tail = tail.strip()
     if not name or (tail and not tail.startswith("#")):
         return None
-    parts = tuple(p.strip().strip('"').strip("'") for p in name.split("."))
+    parts = tuple(_unquote(p.strip()) for p in name.split("."))
     return array, parts
+
+
+def _unquote(part: str) -> str:
+    """A key of a table header as TOML reads it: ``"a\\n"`` is "a" and a newline, ``'x'`` is x."""
+    if len(part) >= 2 and part[0] == part[-1] == '"':
+        try:
+            return str(tomllib.loads(f"k = {part}")["k"])
+        except tomllib.TOMLDecodeError:
+            return part.strip('"')
+    return part.strip("'")
 
 
 class KeyLocator:
