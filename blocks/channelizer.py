@@ -8,6 +8,7 @@ import numpy as np
 
 from ._bank_params import DESIGN_KEYS, DESIGN_PARAMS, make_design
 from .block import Block, BlockError, Chunk, Output, Param, Port, StreamInfo
+from .dsp.banks import signed_channel
 from .dsp.design import BankDesign
 from .dsp.mixing import shift_frequency
 from .params import MAX_CHANNELS
@@ -145,7 +146,7 @@ class Synthesis(Block):
         if p < 2:
             raise BlockError("output = \"group\" needs an oversampled channelizer (oversample >= 2): a critically "
                              "sampled bank does not reconstruct exactly", param="output")
-        signed = sorted((k + m // 2) % m - m // 2 for k in stream.channels)
+        signed = sorted(signed_channel(k, m) for k in stream.channels)
         if signed != list(range(signed[0], signed[0] + len(signed))):
             raise BlockError(f"output = \"group\" merges adjacent channels; the link brings channels "
                              f"{', '.join(str(k % m) for k in signed)}, which have gaps between them", param="output")
@@ -157,7 +158,7 @@ class Synthesis(Block):
         frequency = dict(zip(stream.channels, stream.channel_frequencies))
         centre = (frequency[signed[0] % m] + frequency[signed[-1] % m]) / 2
         return _Group(channels=size, rate=spacing * size, centre=centre,
-                      positions=tuple(((k + m // 2) % m - m // 2 - middle) % size for k in stream.channels),
+                      positions=tuple((signed_channel(k, m) - middle) % size for k in stream.channels),
                       offset=(centre - frequency[middle % m]),
                       design=make_design(size, p, knobs, folder=self.context.design_folder))
 

@@ -24,11 +24,12 @@ __all__ = ["KINDS", "Kind", "MAX_CHANNELS", "Param", "REQUIRED", "UNIT_BOUNDS", 
 
 #: Bounds a quantity takes from its unit when its declaration gives none: finite, and wide enough for
 #: anything physical (frequencies to 3 THz, the top of the radio spectrum as the ITU Radio Regulations
-#: define it; times to about 116 days; levels and ratios to +-400 dB, far past any receiver's range).
+#: define it [from memory]; times to about 116 days; levels and ratios to +-400 dB, far past any
+#: receiver's range [common practice]).
 UNIT_BOUNDS: dict[str, tuple[float, float]] = {"Hz": (-3e12, 3e12), "s": (-1e7, 1e7), "dB": (-400.0, 400.0),
                                                "dBFS": (-400.0, 400.0)}
 #: The most channels one link carries: its channel list and centres travel in every message header,
-#: which is limited to 64 KiB (4,096 channels take about 49 KB; common practice for our wire format).
+#: which wire.HEADER_LIMIT caps at 64 KiB (measured: 4,096 channels take about 49 KB, 5,000 about 60 KB).
 MAX_CHANNELS = 4096
 
 

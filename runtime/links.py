@@ -163,11 +163,10 @@ class Outlet(_LinkEnd):
         self.missing_rows = 0
         self.blocked_seconds = 0.0
         s = self.stream
-        self._fixed: dict[str, Any] = dict(stream=spec.label, sample_type=s.sample_type, sample_rate=s.sample_rate,
-                           centre_frequency=s.centre_frequency, width=s.width)
-        if s.channels:
-            self._fixed.update(channels=list(s.channels), channel_frequencies=list(s.channel_frequencies))
-        self._header = wire.HeaderTemplate(**self._fixed)     # the constant part packed once
+        self._header = wire.HeaderTemplate(                   # the constant part packed once
+            stream=spec.label, sample_type=s.sample_type, sample_rate=s.sample_rate,
+            centre_frequency=s.centre_frequency, width=s.width, channels=list(s.channels) if s.channels else None,
+            channel_frequencies=list(s.channel_frequencies) if s.channels else None)
 
     def _open(self, context: zmq.Context, spec: LinkSpec) -> None:
         keys = spec.keys if spec.bind else None

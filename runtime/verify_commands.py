@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
+from bandloom.blocks.dsp.banks import signed_channel
 from bandloom.blocks.dsp.design import BankDesign
 from bandloom.blocks.dsp.verification import (
     SIGNALS,
@@ -155,9 +156,7 @@ def interior_channels(selected: list[int], channels: int) -> list[int]:
     >>> interior_channels([14, 15, 0, 1, 2], 16)
     [15, 0, 1]
     """
-    def signed(k: int) -> int:
-        return (k + channels // 2) % channels - channels // 2
-    return sorted(selected, key=signed)[1:-1]
+    return sorted(selected, key=lambda k: signed_channel(k, channels))[1:-1]
 
 
 def _worst_of(result: SignalResult, judged: list[int] | None) -> tuple[int, float]:

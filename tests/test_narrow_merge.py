@@ -16,6 +16,8 @@ from bandloom.blocks.block import BlockContext, BlockError, Chunk, StreamInfo
 from bandloom.blocks.channelizer import Channelizer, Synthesis
 from runner import run_flow
 
+FLOWS = Path(__file__).parent.parent / "flows"
+
 
 def make(cls, **params):
     full = {p.name: p.default for p in cls.parameters if not p.required}
@@ -80,47 +82,15 @@ def test_a_group_must_be_adjacent_channels_of_an_oversampled_bank():
 
 
 def test_a_narrow_merge_runs_as_processes_and_its_file_says_its_rate(tmp_path):
-    """scenario -> channelizer (32 x 200 kHz) -> channels -1..2 -> synthesis (group) -> iq-writer: the file
-    holds 0.5 s at 4 x 2 x 200 kHz = 1.6 Msps (not the 6.4 Msps input rate), centred midway (100.1 MHz)."""
+    """flows/group-merge.toml as processes: 6.4 Msps -> channelizer (32 x 200 kHz) -> the channels centred in
+    100.2-100.6 MHz -> synthesis (group) -> iq-writer. The file holds 1 s at 3 x 2 x 200 kHz = 1.2 Msps (not
+    the 6.4 Msps input rate), centred midway between the outer channels (100.4 MHz)."""
     import json
-    flow = tmp_path / "narrow.toml"
-    flow.write_text('''
-[blocks.band]
-type = "scenario"
-sample_rate = "6.4 MHz"
-centre_frequency = "100 MHz"
-duration = "0.5 s"
-transmitters = [{ kind = "fm", frequency = "100.2 MHz", level = "-20 dBFS" }]
-
-[blocks.split]
-type = "channelizer"
-channels = 32
-
-[blocks.merge]
-type = "synthesis"
-output = "group"
-
-[blocks.keep]
-type = "iq-writer"
-path = "group.sigmf-data"
-
-[[links]]
-from = "band.samples"
-to = "split.samples"
-
-[[links]]
-from = "split.channels"
-select = "-1..2"
-to = "merge.channels"
-
-[[links]]
-from = "merge.samples"
-to = "keep.samples"
-''')
-    done, report = run_flow(flow, tmp_path / "out")
+    done, report = run_flow(FLOWS / "group-merge.toml", tmp_path / "out")
     assert done.returncode == 0, done.stderr
     meta = json.loads((tmp_path / "out" / "group.sigmf-meta").read_text())
-    assert meta["global"]["core:sample_rate"] == 1.6e6
-    assert meta["captures"][0]["core:frequency"] == pytest.approx(100.1e6)
+    assert meta["global"]["core:sample_rate"] == 1.2e6
+    assert meta["captures"][0]["core:frequency"] == pytest.approx(100.4e6)
     samples = (tmp_path / "out" / "group.sigmf-data").stat().st_size // 8
-    assert samples == pytest.approx(0.5 * 1.6e6, abs=64)
+    assert samples == pytest.approx(1.0 * 1.2e6, abs=64)
+    assert report["lost_samples"] == 0

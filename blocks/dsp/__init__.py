@@ -10,7 +10,7 @@ from importlib import import_module
 from typing import Any
 
 _WHERE = {
-    "AnalysisBank": "banks", "SynthesisBank": "banks", "channel_offsets": "banks",
+    "AnalysisBank": "banks", "SynthesisBank": "banks", "channel_offsets": "banks", "signed_channel": "banks",
     "BankDesign": "design", "design_bank": "design",
     "ResponseFigures": "figures", "cost_ratio": "figures", "frequency_response": "figures",
     "response_figures": "figures",

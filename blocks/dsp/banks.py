@@ -46,7 +46,7 @@ import scipy.fft
 
 from .errors import ParameterError
 
-__all__ = ["AnalysisBank", "SynthesisBank", "channel_offsets"]
+__all__ = ["AnalysisBank", "SynthesisBank", "channel_offsets", "signed_channel"]
 
 _KERNEL_MODULES = {"fast": "._polyphase_fast", "reference": "._polyphase_reference"}
 _KERNEL_DTYPES = {"fast": np.complex64, "reference": np.complex128}
@@ -91,6 +91,16 @@ def _check_kernel(kernel: str) -> str:
 def channel_offsets(channels: int) -> np.ndarray:
     """Channel centre offsets in cycles per input sample, FFT order (see module doc)."""
     return np.fft.fftfreq(channels)
+
+
+def signed_channel(k: int, channels: int) -> int:
+    """Channel ``k`` (FFT order) as a signed number, its centre's offset in channel spacings: k for
+    k < M/2, k - M above (channel M-1 is -1, the next one below the centre).
+
+    >>> [signed_channel(k, 8) for k in range(8)]
+    [0, 1, 2, 3, -4, -3, -2, -1]
+    """
+    return (k + channels // 2) % channels - channels // 2
 
 
 class AnalysisBank:

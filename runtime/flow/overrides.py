@@ -12,6 +12,7 @@ relative to the output folder.
 from __future__ import annotations
 
 import tomllib
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -21,11 +22,15 @@ from .problems import FlowErrors, Problem, printable
 __all__ = ["Override", "apply_overrides", "attribute_to_overrides", "parse_override"]
 
 
+@dataclass(frozen=True)
 class Override:
-    """One ``--set``: the table it changes (``("blocks", NAME)`` or ``("flow",)``), the key, the value."""
+    """One ``--set``: as written, the table it changes (``("blocks", NAME)`` or ``("flow",)``), the key,
+    the value."""
 
-    def __init__(self, text: str, table: tuple[str, ...], key: str, value: Any) -> None:
-        self.text, self.table, self.key, self.value = text, table, key, value
+    text: str
+    table: tuple[str, ...]
+    key: str
+    value: Any
 
     @property
     def where(self) -> str:
