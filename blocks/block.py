@@ -252,6 +252,10 @@ class Block:
         Declared ports.
     is_source : bool
         True for blocks without inputs that ``produce`` chunks.
+    length_parameter : str or None
+        For a finite source, the parameter (a count or a duration) that sets
+        how much it produces: ``bandloom bench --flow`` scales it to run the
+        flow at two lengths.
     restartable : bool
         True when a new instance can take over part way through the streams
         (``on_failure = "restart"``): its first chunk on each input comes at a
@@ -296,6 +300,7 @@ class Block:
     details: ClassVar[str] = ""             # more than a parameter's line holds (a list's table keys), plain text
     uses_stdin: ClassVar[bool] = False     # the one block of a flow that reads the run's standard input
     uses_stdout: ClassVar[bool] = False    # the one block of a flow that writes data to the run's standard output
+    length_parameter: ClassVar[str | None] = None   # a finite source's parameter that sets how long it runs
 
     def __init__(self, params: dict[str, Any], context: BlockContext) -> None:
         self.params = params
@@ -310,6 +315,12 @@ class Block:
         wrong width, ...). Called by ``bandloom check`` and again at run time.
         """
         return {}
+
+    @classmethod
+    def preload(cls) -> None:
+        """Import and warm, once, what the block needs at run time (compiled kernels, heavy modules): the
+        runtime calls this in the process its workers are forked from, so each worker has them at no cost.
+        The default does nothing."""
 
     # Run time -----------------------------------------------------------------
     def start(self, inputs: dict[str, StreamInfo]) -> None:

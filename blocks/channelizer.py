@@ -16,6 +16,15 @@ from .params import MAX_CHANNELS
 __all__ = ["Channelizer", "Synthesis"]
 
 
+def _warm_banks() -> None:
+    """Load the banks' compiled kernels (numba's cache) and run each once on a few samples."""
+    from .dsp.banks import AnalysisBank, SynthesisBank
+
+    taps = np.full(8, 1 / 8)
+    frames = AnalysisBank(4, 2, taps).process(np.ones(16, dtype=np.complex64))
+    SynthesisBank(4, 2, taps).process(frames)
+
+
 class Channelizer(Block):
     type_name = "channelizer"
     summary = "Split a wideband IQ stream into equally spaced channels (polyphase filter bank)."
@@ -30,6 +39,10 @@ class Channelizer(Block):
     ) + DESIGN_PARAMS
     inputs = (Port("samples", "samples", "wideband IQ"),)
     outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
+
+    @classmethod
+    def preload(cls) -> None:
+        _warm_banks()
 
     def _design(self) -> BankDesign:
         return make_design(self.params["channels"], self.params["oversample"], self.params,
@@ -107,6 +120,10 @@ class Synthesis(Block):
     inputs = (Port("channels", "channels", "channels from a channelizer; missing channels count as silence"),)
     outputs = (Port("samples", "samples", "wideband IQ at the channelizer's input rate, delayed by "
                     "the design's round-trip delay"),)
+
+    @classmethod
+    def preload(cls) -> None:
+        _warm_banks()
 
     def _design(self, stream: StreamInfo) -> BankDesign:
         knobs = dict(stream.design)

@@ -118,6 +118,7 @@ class IQReader(Block):
     type_name = "iq-reader"
     summary = "Read raw interleaved IQ samples from a file (cf32, cf64, ci16, ci8, cu8)."
     is_source = True
+    length_parameter = "repeat"
     parameters = (
         Param("path", "input-path", "the file, relative to the flow file's folder"),
         Param("metadata", "choice", "'sigmf' reads format, rate, centre frequency and start time from the "

@@ -217,6 +217,7 @@ class Scenario(Block):
     summary = "Generate a seeded synthetic band: noise floor plus CW, AM, FM, FSK and wideband transmitters."
     details = transmitter_keys()
     is_source = True
+    length_parameter = "duration"
     parameters = (
         Param("sample_rate", "quantity", "sample rate of the band", unit="Hz", minimum=1.0),
         Param("centre_frequency", "quantity", "RF frequency at the band's centre", default=0.0, unit="Hz"),

@@ -19,8 +19,6 @@ from collections.abc import Callable
 from typing import Any, TextIO
 
 import numpy as np
-import scipy.fft
-from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
 from bandloom.blocks.text_tables import render_rows
 
 from ._memory import reuse_chunk_buffers
@@ -40,6 +38,15 @@ def add_arguments(parser: ArgumentParser) -> None:
     parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
     parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
+    flows = parser.add_argument_group("a whole flow (docs/performance.md)")
+    flows.add_argument("--flow", help="measure this flow file instead of the banks: steady rate, start-up, the "
+                       "ratio to its channelizer in process, busy fraction per block, bytes per link")
+    flows.add_argument("--set", action="append", default=[], metavar="BLOCK.KEY=VALUE",
+                       help="with --flow: override a block parameter, as for 'bandloom run'")
+    flows.add_argument("--lengthen", type=int, default=4, help="with --flow: the long run is this many times the "
+                       "short one (default 4)")
+    flows.add_argument("--runs", type=int, default=2, help="with --flow: runs of each length, the fastest counts "
+                       "(default 2)")
 
 
 def _best(function: Callable[[], object], repeats: int) -> float:
@@ -54,6 +61,9 @@ def _best(function: Callable[[], object], repeats: int) -> float:
 def measure_case(channels: int, taps_per_branch: int, oversample: int, *, samples: int, chunk: int, repeats: int,
                  seed: int = 0) -> dict[str, Any]:
     """Time one case; return a dict of throughputs and ratios."""
+    import scipy.fft
+    from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
+
     M, R = channels, taps_per_branch
     D = M // oversample
     rng = np.random.default_rng(seed)
@@ -114,6 +124,9 @@ def measure_case(channels: int, taps_per_branch: int, oversample: int, *, sample
 
 
 def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = None) -> int:
+    if args.flow:
+        from .flow_bench import run_flow_bench
+        return run_flow_bench(args, out, progress)
     reuse_chunk_buffers()
     results = []
     cases = [(m, r, p) for m in args.channels for r in args.taps_per_branch for p in args.oversample]

@@ -144,6 +144,8 @@ class OutletStats:
     down_rows: int = 0           # of dropped_rows: dropped while the consumer was down (restarting, or left down)
     next_index: int = 0          # absolute index after the last row sent
     blocked_seconds: float = 0.0
+    held_rows: int = 0           # offered, waiting to fill a message (see links.Outlet); sent at end of stream
+    copied_bytes: int = 0        # copied by the outlet to gather the link's channels or change their type
     # endpoints for outside programs only (None on links between blocks):
     delivered_rows: int | None = None    # acknowledged by a consumer
     consumers: int = 0                   # consumers that attached, one after another
@@ -165,7 +167,7 @@ class InletStats:
 
 
 #: Counters that say where a link's end stands (taken from the later instance), not how much it did.
-_POSITIONS = frozenset({"seq", "next_index"})
+_POSITIONS = frozenset({"seq", "next_index", "held_rows"})
 
 
 def add_counters(earlier: OutletStats | InletStats | None, later: OutletStats | InletStats | None) -> Any:
@@ -205,6 +207,10 @@ class StatsMessage:
     report: list[str] = field(default_factory=list)
     losses: list[Loss] = field(default_factory=list)     # what the block itself lost, so far
     message: str = ""
+    # for 'bandloom bench --flow': CLOCK_MONOTONIC seconds (one clock for every process of the machine)
+    started_clock: float = 0.0                 # when the worker process began
+    first_rows_clock: float | None = None      # when its block first took (or, a source, made) rows
+    busy_seconds: float = 0.0                  # spent inside the block's own code (produce, consume, finish)
 
     def then(self, later: StatsMessage) -> StatsMessage:
         """This instance's last statistics followed by those of the instance that took its place:
@@ -213,7 +219,8 @@ class StatsMessage:
             return {k: add_counters(mine.get(k), theirs.get(k)) for k in {**mine, **theirs}}
 
         return replace(later, rows_in=self.rows_in + later.rows_in, rows_out=self.rows_out + later.rows_out,
-                       losses=self.losses + later.losses, inputs=combined(self.inputs, later.inputs),
+                       losses=self.losses + later.losses, busy_seconds=self.busy_seconds + later.busy_seconds,
+                       first_rows_clock=self.first_rows_clock or later.first_rows_clock, inputs=combined(self.inputs, later.inputs),
                        outputs=combined(self.outputs, later.outputs))
 
     def encode(self) -> bytes:

@@ -18,6 +18,7 @@ from bandloom.blocks.units import format_frequency
 from .flow import Flow, FlowErrors, format_key_path, load_flow
 from .flow.declarations import BLOCK_OPTIONS
 from .flow.overrides import parse_override
+from .launcher import Launcher
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
@@ -128,11 +129,17 @@ def _drain_time(text: str) -> float:
 
 def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
-    flow = _load(args, log)
-    if flow is None:
-        return 1
+    with Launcher() as launcher:        # imports what workers need while the flow is checked
+        flow = _load(args, log)
+        if flow is None:
+            return 1
+        return _run_checked(args, flow, launcher, log)
+
+
+def _run_checked(args: argparse.Namespace, flow: Flow, launcher: Launcher, log: TextIO) -> int:
     output_dir = Path(args.out) if args.out else Path.cwd()
-    supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time)
+    supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time,
+                            launcher=launcher)
     with contextlib.ExitStack() as stack:
         if args.metrics:
             try:

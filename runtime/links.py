@@ -15,6 +15,13 @@
   queue gets smaller messages, so that ``queue`` messages hold at most
   :data:`QUEUE_BYTES` at each end: memory is bounded in bytes whatever
   ``queue`` says.
+* Narrow links batch: rows that would make a message smaller than
+  :data:`BATCH_BYTES` wait in the outlet (``held_rows``, reported and, if the
+  run is aborted, counted as in flight) until the message is that large, its
+  oldest row has waited the link's ``batch_seconds`` (its ``latency`` in the
+  flow file), the stream jumps (a gap), or the stream ends. With
+  ``batch_seconds`` 0 every chunk goes as the block made it. A 64-channel split then sends one message where it sent
+  sixteen, which is most of what a message costs its two processes.
 * A consumer that is down (restarting, or left down by its ``on_failure``):
   the supervisor says ``detach``; until ``attach``, what the outlet would
   send it is dropped and counted (``down_rows``), never waited for, and an
@@ -49,11 +56,14 @@ from .flow.model import WhenFull
 from .keys import load_server_keys
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet", "QUEUE_BYTES", "configure", "secure_server"]
+__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet",
+           "POLL_MS", "QUEUE_BYTES", "configure", "secure_server"]
 
 MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
 QUEUE_BYTES = 256 << 20                       # samples a link's queue holds at each end, bytes at most
+BATCH_BYTES = 256 << 10                       # smaller messages wait for more rows (for batch_seconds at most)
 POLL_MS = 200
+BATCH_POLL_MS = 20                            # how often a worker looks at waiting batches while idle
 
 
 class Aborted(Exception):
@@ -114,6 +124,22 @@ def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) 
     return authenticator
 
 
+def _column_picker(columns: tuple[int, ...] | None) -> int | slice | list[int] | None:
+    """How an outlet picks its columns: one column as an int, a run of neighbours as a slice (a view,
+    no copy; all of them stay contiguous), anything else as a list (a gather).
+
+    >>> _column_picker((3,)), _column_picker((0, 1, 2)), _column_picker((5, 1))
+    (3, slice(0, 3, None), [5, 1])
+    """
+    if columns is None:
+        return None
+    if len(columns) == 1:
+        return columns[0]
+    if list(columns) == list(range(columns[0], columns[0] + len(columns))):
+        return slice(columns[0], columns[0] + len(columns))
+    return list(columns)
+
+
 class _LinkEnd:
     """What both ends share: a socket that closes with the ``with`` block."""
 
@@ -139,14 +165,23 @@ class Outlet(_LinkEnd):
     def __init__(self, context: zmq.Context, spec: LinkSpec, should_abort: Callable[[], bool]) -> None:
         self.spec = spec
         self.id = spec.link
-        self.columns = list(spec.columns) if spec.columns is not None else None
+        self.columns = _column_picker(spec.columns)
         self.stream = spec.stream
         self.when_full = spec.when_full
         self.should_abort = should_abort
         self._open(context, spec)
         # a long queue gets smaller messages, so that queue x message stays within QUEUE_BYTES
         message_bytes = min(MESSAGE_BYTES, QUEUE_BYTES // max(1, spec.queue))
-        self.rows_per_message = max(1, message_bytes // (self.stream.width * self.stream.dtype.itemsize))
+        row_bytes = self.stream.width * self.stream.dtype.itemsize
+        self.rows_per_message = max(1, message_bytes // row_bytes)
+        self.batch_seconds = spec.batch_seconds
+        self.batch_rows = max(1, min(self.rows_per_message, BATCH_BYTES // row_bytes)) if spec.batch_seconds else 1
+        self._batch: np.ndarray | None = None        # rows waiting to fill a message (see the module doc)
+        self._held = 0
+        self._held_first = self._held_end = 0
+        self._held_discontinuity = False
+        self._held_since = 0.0
+        self.copied_bytes = 0
         self.next_index = spec.resume_index or 0    # index after the last row sent
         self.offered_index = self.next_index        # index after the last row offered, sent or dropped
         self.seq = spec.resume_seq
@@ -194,15 +229,60 @@ class Outlet(_LinkEnd):
         return True
 
     def send(self, chunk: Chunk) -> None:
-        """Send a chunk (the link's columns of it), in as many messages as the byte cap needs."""
-        data = chunk.data
-        if self.columns is not None:
-            data = data[:, self.columns[0]] if len(self.columns) == 1 else data[:, self.columns]
-        data = np.ascontiguousarray(data, dtype=self.stream.dtype)
+        """Send a chunk (the link's columns of it): whole messages of at most ``rows_per_message`` rows go
+        now; rows that would make a message smaller than a batch wait (see the module doc)."""
+        data = chunk.data if self.columns is None else chunk.data[:, self.columns]
+        if self._held and (chunk.first_index != self._held_end or chunk.discontinuity):
+            self.flush()                       # a jump in the stream starts a message of its own
+        start = 0
+        if self._held:                         # top up the waiting batch first
+            start = min(len(data), self.batch_rows - self._held)
+            self._hold(data[:start], chunk.first_index, False)
+        if len(data) - start < self.batch_rows:
+            if start < len(data):
+                self._hold(data[start:], chunk.first_index + start, chunk.discontinuity and start == 0)
+            return
+        rest = data[start:]
+        contiguous = np.ascontiguousarray(rest, dtype=self.stream.dtype)
+        if not np.may_share_memory(contiguous, rest):      # a gather of columns, or another sample type
+            self.copied_bytes += contiguous.nbytes
         step = self.rows_per_message
-        for start in range(0, len(data), step):
-            first = chunk.first_index + start
-            self._send_rows(data[start:start + step], first, chunk.discontinuity and start == 0)
+        for offset in range(0, len(contiguous), step):
+            first = chunk.first_index + start + offset
+            self._send_rows(contiguous[offset:offset + step], first, chunk.discontinuity and start + offset == 0)
+
+    def _hold(self, data: np.ndarray, first_index: int, discontinuity: bool) -> None:
+        """Copy rows (no more than the batch has room for) into the batch; send it when it is full."""
+        if not self._held:
+            self._held_first, self._held_discontinuity = first_index, discontinuity
+            self._held_since = time.monotonic()
+            self._batch = np.empty((self.batch_rows,) + data.shape[1:], dtype=self.stream.dtype)
+        assert self._batch is not None
+        self._batch[self._held:self._held + len(data)] = data
+        self.copied_bytes += self._batch[:len(data)].nbytes
+        self._held += len(data)
+        self._held_end = first_index + len(data)
+        if self._held == self.batch_rows or time.monotonic() - self._held_since >= self.batch_seconds:
+            self.flush()
+
+    def flush(self) -> None:
+        """Send the rows waiting in the batch, if any."""
+        if not self._held:
+            return
+        assert self._batch is not None
+        batch, self._batch = self._batch[:self._held], None     # sent without copying: never written again
+        self._held = 0
+        self._send_rows(batch, self._held_first, self._held_discontinuity)
+
+    @property
+    def holding(self) -> bool:
+        """Rows wait in the batch."""
+        return bool(self._held)
+
+    def flush_if_due(self) -> None:
+        """Send the batch if its oldest row has waited ``batch_seconds`` (the worker asks while idle)."""
+        if self._held and time.monotonic() - self._held_since >= self.batch_seconds:
+            self.flush()
 
     def _send_rows(self, data: np.ndarray, first_index: int, discontinuity: bool) -> None:
         chunk = Chunk(data, first_index, discontinuity)
@@ -247,6 +327,7 @@ class Outlet(_LinkEnd):
         """Send end of stream, counting rows lost after the last message: dropped here when the
         link was full, or (``final_index``, from a live source) never delivered to the block. While
         the consumer is down the end is kept, and sent when it is attached again."""
+        self.flush()
         self.ended = True
         self.final_index = final_index
         if self.attached:
@@ -266,7 +347,8 @@ class Outlet(_LinkEnd):
         return OutletStats(rows=self.rows, messages=self.messages, seq=self.seq, dropped_rows=self.dropped_rows,
                            dropped_messages=self.dropped_messages, discontinuities=self.discontinuities,
                            missing_rows=self.missing_rows, down_rows=self.down_rows, next_index=self.next_index,
-                           blocked_seconds=round(self.blocked_seconds, 3))
+                           blocked_seconds=round(self.blocked_seconds, 3), held_rows=self._held,
+                           copied_bytes=self.copied_bytes)
 
     def close(self, *, discard: bool = False) -> None:
         """Close; queued messages are still delivered unless ``discard`` (abort, error) or the consumer

@@ -13,7 +13,8 @@ Per link (label ``link``, the link's label as the summary prints it):
 ``bandloom_link_sent_samples_total``, ``bandloom_link_received_samples_total``
 (for an endpoint: acknowledged by its consumers), ``bandloom_link_dropped_samples_total``,
 ``bandloom_link_missing_samples_total`` (gaps that arrived on the link),
-``bandloom_link_in_flight_samples`` and ``bandloom_link_queue_fill_ratio``.
+``bandloom_link_in_flight_samples``, ``bandloom_link_held_samples`` (waiting in the
+sender to fill a message, see the link's ``latency``) and ``bandloom_link_queue_fill_ratio``.
 Per block (label ``block``): ``bandloom_block_state`` (one series per state,
 1 for the current one), ``bandloom_block_samples_in_total``,
 ``bandloom_block_samples_out_total``, ``bandloom_block_lost_samples_total``
@@ -82,6 +83,8 @@ class FlowCollector(Collector):
                                   ("missing_samples", "Samples missing in gaps on the link"))}
         in_flight = GaugeMetricFamily("bandloom_link_in_flight_samples", "Samples sent and not yet received",
                                       labels=["link"])
+        held = GaugeMetricFamily("bandloom_link_held_samples", "Samples waiting in the sender to fill a message",
+                                 labels=["link"])
         fill = GaugeMetricFamily("bandloom_link_queue_fill_ratio", "Messages queued over the link's capacity",
                                  labels=["link"])
         for spec, sent, received in link_counts(supervisor.flow, blocks):
@@ -89,6 +92,7 @@ class FlowCollector(Collector):
             link["sent_samples"].add_metric(label, sent.rows)
             link["dropped_samples"].add_metric(label, sent.dropped_rows)
             link["missing_samples"].add_metric(label, sent.missing_rows)
+            held.add_metric(label, sent.held_rows)
             far, between = received_and_in_flight(sent, received)
             if far is not None and between is not None:
                 link["received_samples"].add_metric(label, far)
@@ -98,6 +102,7 @@ class FlowCollector(Collector):
                 fill.add_metric(label, queued)
         yield from link.values()
         yield in_flight
+        yield held
         yield fill
         state = StateSetMetricFamily("bandloom_block_state", "The block's state", labels=["block"])
         samples_in = CounterMetricFamily("bandloom_block_samples_in", "Samples the block took", labels=["block"])

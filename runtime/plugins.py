@@ -75,6 +75,8 @@ def validate_block_class(name: str, cls: object) -> None:
             names.add(port.name)
     if cls.is_source and cls.inputs:
         raise PluginError("a source block cannot have inputs")
+    if cls.length_parameter is not None and (not cls.is_source or cls.length_parameter not in seen):
+        raise PluginError(f"length_parameter {cls.length_parameter!r} is not a parameter of this source block")
 
 
 def load_registry(only: str | None = None) -> Registry:

@@ -79,7 +79,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             "dropped_samples": sent.dropped_rows, "dropped_while_down_samples": sent.down_rows,
             "dropped_messages": sent.dropped_messages,
             "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
-            "last_index": sent.next_index,
+            "last_index": sent.next_index, "held_samples": sent.held_rows, "copied_bytes": sent.copied_bytes,
         })
         if endpoint:
             links[-1].update(delivered_samples=sent.delivered_rows, consumers=sent.consumers,
@@ -98,8 +98,12 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             losses.append({"samples": received.lost_at_restart, "where": f"link {link.label}",
                            "why": f"sent to {link.target} before it failed, read by no instance (restarted)",
                            "accepted": False})
+        when = f"when the run {'was ' if outcome == 'interrupted' else ''}{outcome}"
+        if sent.held_rows:
+            losses.append({"samples": sent.held_rows, "where": f"link {link.label}",
+                           "why": f"waiting in {link.source}'s batch for the link (latency) {when}",
+                           "accepted": False})
         if in_flight:
-            when = f"when the run {'was ' if outcome == 'interrupted' else ''}{outcome}"
             why = f"not acknowledged by a consumer of the endpoint {when}" if endpoint else f"still in flight {when}"
             if consumer is not None and consumer.left_down:
                 why = f"sent to {link.target} before it failed, read by nobody (on_failure = \"continue\")"
@@ -115,7 +119,11 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
         report[name] = {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
                         "reason": r.exit_reason, "report": list(r.report), "restarts": r.restarts,
                         "incidents": list(r.incidents),
-                        "samples_in": totals.rows_in if totals else 0, "samples_out": totals.rows_out if totals else 0}
+                        "samples_in": totals.rows_in if totals else 0, "samples_out": totals.rows_out if totals else 0,
+                        # for 'bandloom bench --flow' (CLOCK_MONOTONIC seconds, one clock for the whole machine)
+                        "busy_seconds": totals.busy_seconds if totals else 0.0,
+                        "first_samples_clock": totals.first_rows_clock if totals else None,
+                        "last_report_clock": totals.started_clock + totals.time if totals else None}
     lost = sum(x["samples"] for x in losses)
     unaccepted = sum(x["samples"] for x in losses if not x["accepted"])
     return {"flow": str(flow.path), "name": flow.name, "outcome": outcome, "seconds": round(seconds, 3),
@@ -167,8 +175,8 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
 def received_and_in_flight(sent: OutletStats, received: InletStats | None) -> tuple[int | None, int | None]:
     """What reached the far end of a link (for an endpoint: what its consumers acknowledged) and what is
     still between the ends (sent - received - lost at a restart of the receiver, never below 0: the two
-    ends report at different moments);
-    None for both when nothing is known of the far end."""
+    ends report at different moments); None for both when nothing is known of the far end. Rows the
+    sender holds in a batch are not sent yet: they are its ``held_rows``."""
     if sent.delivered_rows is not None:
         return sent.delivered_rows, max(0, sent.rows - sent.delivered_rows)
     if received is None:

@@ -32,6 +32,7 @@ from bandloom.blocks._bank_params import save_designs
 
 from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent, next_state
 from .flow import FailurePolicy, Flow, Instance, Link, OnFailure
+from .launcher import LaunchedProcess, Launcher
 from .run_report import StatusDisplay, describe_exit, summarise
 from .worker_spec import LinkSpec, WorkerSpec
 
@@ -53,7 +54,7 @@ class BlockRecord:
     """What the supervisor knows of one block process."""
 
     name: str
-    process: subprocess.Popen
+    process: subprocess.Popen | LaunchedProcess
     state: BlockState = BlockState.STARTING
     last: StatsMessage | None = None
     rate: float = 0.0             # rows per second between the last two statistics
@@ -121,6 +122,7 @@ def link_specs(folder: str, inst: Instance, *, earlier: StatsMessage | None = No
                         stream=link.stream, bind=link.endpoint is not None if sending else True,
                         columns=link.columns if sending else None, queue=link.options.queue,
                         when_full=link.options.when_full, keys=link.options.keys if sending else None,
+                        batch_seconds=link.options.latency if sending and link.target else 0.0,
                         consumer=link.target if sending else None,
                         attached=not (sending and link.target in down), **resume)
     inputs = {port: spec(link, sending=False) for port, link in inst.inputs.items()}
@@ -132,8 +134,9 @@ class Supervisor:
     """Runs one flow: ``run()`` returns the outcome, ``summary()`` what happened."""
 
     def __init__(self, flow: Flow, *, output_dir: str | Path, quiet: bool = False, log: TextIO = sys.stderr,
-                 drain_seconds: float = DRAIN_SECONDS) -> None:
+                 drain_seconds: float = DRAIN_SECONDS, launcher: Launcher | None = None) -> None:
         self.flow = flow
+        self.launcher = launcher      # forks the workers (see .launcher); one of our own when not given
         self.drain_seconds = drain_seconds
         self.output_dir = output_dir
         self.quiet = quiet
@@ -158,17 +161,15 @@ class Supervisor:
             outputs=outputs, control=f"ipc://{self.folder}/control", stats=f"ipc://{self.folder}/stats",
             restart=record.restarts if record else 0, design_folder=self.folder)
 
-    def start_worker(self, inst: Instance, spec: WorkerSpec) -> subprocess.Popen:
+    def start_worker(self, inst: Instance, spec: WorkerSpec) -> LaunchedProcess:
         spec_path = os.path.join(self.folder, f"spec-{self.workers_started}.json")   # in flow order; restarts after
         self.workers_started += 1
         with open(spec_path, "w") as handle:
             handle.write(spec.to_json())
         # Only the block that reads standard input gets it, and only the one that
         # writes data to standard output gets that; the rest print to stderr.
-        return subprocess.Popen(
-            [sys.executable, "-m", "bandloom.runtime.worker", spec_path],
-            stdin=None if inst.cls.uses_stdin else subprocess.DEVNULL,
-            stdout=None if inst.cls.uses_stdout else sys.stderr.fileno())
+        assert self.launcher is not None
+        return self.launcher.start(spec_path, keep_stdin=inst.cls.uses_stdin, keep_stdout=inst.cls.uses_stdout)
 
     # -- the run -------------------------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -191,7 +192,11 @@ class Supervisor:
         signal.signal(signal.SIGINT, request_stop)
         signal.signal(signal.SIGTERM, request_stop)
         started = time.monotonic()
+        own_launcher = self.launcher is None
         try:
+            if self.launcher is None:
+                self.launcher = Launcher()
+            self.launcher.preload(sorted({inst.type_name for inst in self.flow.instances.values()}))
             for inst in self.flow.instances.values():
                 self.blocks[inst.name] = BlockRecord(inst.name, self.start_worker(inst, self.worker_spec(inst)),
                                                      policy=inst.policy)
@@ -201,6 +206,8 @@ class Supervisor:
                 if record.process.poll() is None:
                     record.process.kill()
                     record.process.wait()
+            if own_launcher and self.launcher is not None:
+                self.launcher.close()
             signal.signal(signal.SIGINT, previous[signal.SIGINT])
             signal.signal(signal.SIGTERM, previous[signal.SIGTERM])
             control.close()

@@ -31,8 +31,11 @@ import sys
 import tempfile
 import time
 import traceback
+from collections.abc import Callable
+from functools import partial
 from pathlib import Path
 
+import setproctitle
 import zmq
 from bandloom.blocks.block import Block, BlockContext, Output
 
@@ -40,7 +43,7 @@ from . import wire
 from ._memory import reuse_chunk_buffers
 from .control import Control, ControlWord, StatsMessage, WorkerEvent
 from .endpoints import EndpointOutlet
-from .links import Aborted, Inlet, Outlet
+from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet
 from .plugins import load_registry
 from .worker_spec import WorkerSpec
 
@@ -74,6 +77,8 @@ class Worker:
         self.rows_in = 0
         self.rows_out = 0
         self.started = time.monotonic()
+        self.first_rows_clock: float | None = None   # when the block first took or made rows
+        self.busy_seconds = 0.0                      # inside produce, consume and finish
         self.parent = os.getppid()
 
     # -- control and statistics -------------------------------------------------------------
@@ -108,6 +113,17 @@ class Worker:
                 self.stop = True
         return self.abort
 
+    def all_outlets(self) -> list[Outlet]:
+        return [o for outs in self.outlets.values() for o in outs]
+
+    def flush_due_batches(self) -> bool:
+        """Send batches whose oldest rows have waited long enough; True while any outlet still holds rows."""
+        holding = False
+        for outlet in self.all_outlets():
+            outlet.flush_if_due()
+            holding = holding or outlet.holding
+        return holding
+
     def outlets_to(self, consumer: str | None) -> list[Outlet]:
         return [o for outs in self.outlets.values() for o in outs if consumer and o.spec.consumer == consumer]
 
@@ -121,7 +137,8 @@ class Worker:
             outputs={o.id: o.stats() for outs in self.outlets.values() for o in outs},
             progress=(int(progress[0]), int(progress[1])) if progress else None,
             report=report or [], losses=list(self.block.losses()) if self.block is not None else [],
-            message=message)
+            message=message, started_clock=self.started, first_rows_clock=self.first_rows_clock,
+            busy_seconds=round(self.busy_seconds, 6))
         self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 
@@ -175,14 +192,25 @@ class Worker:
         while not self.go and not self.stop and not self.poll_control():
             self.control.poll(50)
 
+    def timed(self, call: Callable[[], Output | None]) -> Output | None:
+        """Run one call into the block, adding its time to ``busy_seconds``."""
+        began = time.perf_counter()
+        try:
+            return call()
+        finally:
+            self.busy_seconds += time.perf_counter() - began
+
     def run_source(self, block: Block) -> None:
         self.wait_for_go()
         block.begin()
         while not self.poll_control():
-            produced = block.produce()
+            produced = self.timed(block.produce)
             if produced is None:
                 break
+            if self.first_rows_clock is None and produced:
+                self.first_rows_clock = time.monotonic()
             self.emit(produced)
+            self.flush_due_batches()
             self.maybe_stats()
 
     def run_consumer(self, block: Block) -> None:
@@ -192,10 +220,11 @@ class Worker:
             poller.register(inlet.sock, zmq.POLLIN)
             by_socket[inlet.sock] = inlet
         open_inlets = set(self.inlets)
+        holding = False
         while open_inlets:
             if self.poll_control():
                 return
-            for sock, _ in poller.poll(200):
+            for sock, _ in poller.poll(BATCH_POLL_MS if holding else POLL_MS):
                 inlet = by_socket[sock]
                 try:
                     chunk = inlet.receive()
@@ -203,12 +232,15 @@ class Worker:
                     raise RuntimeError(f"link {inlet.spec.label}: bad message: {error}") from None
                 if chunk is not None:
                     self.rows_in += chunk.count
-                    self.emit(block.consume(inlet.port, chunk))
+                    if self.first_rows_clock is None and chunk.count:
+                        self.first_rows_clock = time.monotonic()
+                    self.emit(self.timed(partial(block.consume, inlet.port, chunk)))
                 if inlet.ended:
                     open_inlets.discard(inlet)
                     poller.unregister(sock)
+            holding = self.flush_due_batches()
             self.maybe_stats()
-        self.emit(block.finish())
+        self.emit(self.timed(block.finish))
 
     def run(self) -> None:
         block = self.build()
@@ -297,6 +329,8 @@ def main(argv: list[str] | None = None) -> int:
     reuse_chunk_buffers()
     args = sys.argv[1:] if argv is None else argv
     spec = WorkerSpec.from_json(Path(args[0]).read_text())
+    # what ps and top show for this process (a worker forked by the launcher would show the launcher's line)
+    setproctitle.setproctitle(f"bandloom worker {spec.name} ({spec.type_name}) {args[0]}")
     worker = Worker(spec)
     try:
         worker.run()

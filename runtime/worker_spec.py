@@ -31,7 +31,8 @@ class LinkSpec:
     endpoint). For a restarted block, ``resume_index`` and ``resume_seq`` are
     where its predecessor's end of this link stood at its last report (None:
     a first instance, starting at 0), and ``attached`` is False on an output
-    whose consumer is down when this worker starts (see :class:`.links.Outlet`).
+    whose consumer is down when this worker starts (see :class:`.links.Outlet`). ``batch_seconds`` is the
+    link's ``latency`` (outputs to other blocks only).
     """
 
     link: int
@@ -42,6 +43,7 @@ class LinkSpec:
     columns: tuple[int, ...] | None = None
     queue: int = 8
     when_full: WhenFull = WhenFull.WAIT
+    batch_seconds: float = 0.0       # how long rows may wait to fill a message; 0: each chunk as it is
     keys: str | None = None
     consumer: str | None = None
     attached: bool = True

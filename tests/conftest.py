@@ -1,11 +1,18 @@
 """Shared helpers: scipy brute-force oracles for the bank conventions, and a busy machine."""
 
+import os
 import subprocess
 import sys
+import tempfile
 
 import numpy as np
 import pytest
 import scipy.signal
+
+# The suite keeps its bank designs in a design cache of its own (blocks/_bank_params.py), made new for each
+# session, so that nothing from an earlier run or from the user's own cache is used; the processes the tests
+# start inherit it.
+os.environ["BANDLOOM_CACHE_DIR"] = tempfile.mkdtemp(prefix="bandloom-test-designs-")
 
 
 def analysis_oracle(taps, x, channels, decimation):

@@ -1,8 +1,10 @@
 """Run the bandloom command line in a real subprocess, as a user would."""
 
 import json
+import os
 import subprocess
 import sys
+from pathlib import Path
 
 
 def bandloom(*args, cwd=None, timeout=240, stdin=None, env=None, binary_stdout=False):
@@ -22,3 +24,37 @@ def run_flow(flow_path, out_dir, *extra, timeout=240, cwd=None):
                     binary_stdout=True, cwd=cwd)
     data = json.loads(report.read_text()) if report.exists() else None
     return done, data
+
+
+def descendants(pid):
+    """Every process below ``pid`` (read from /proc)."""
+    found, todo = [], [pid]
+    while todo:
+        parent = todo.pop()
+        try:
+            tasks = list(Path(f"/proc/{parent}/task").iterdir())
+        except OSError:
+            continue
+        for task in tasks:
+            try:
+                children = (task / "children").read_text().split()
+            except OSError:
+                continue
+            found += [int(c) for c in children]
+            todo += [int(c) for c in children]
+    return found
+
+
+def worker_processes(below=None):
+    """{pid: (block instance name, spec file)} of the bandloom workers running now (below process ``below``,
+    if given), read from their process titles: ``bandloom worker NAME (TYPE) SPEC``."""
+    pids = descendants(below) if below is not None else [int(e) for e in os.listdir("/proc") if e.isdigit()]
+    found = {}
+    for pid in pids:
+        try:
+            words = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").split()
+        except OSError:
+            continue
+        if words[:2] == [b"bandloom", b"worker"] and len(words) >= 5:
+            found[pid] = (words[2].decode(), Path(words[4].decode()))
+    return found

@@ -1,5 +1,9 @@
 """design_bank: the default oversampled designs meet their figures and really reconstruct."""
 
+import os
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 from bandloom.blocks.dsp import design_bank, response_figures
@@ -106,6 +110,7 @@ def test_a_design_handed_over_as_a_file_is_the_same_design(tmp_path, monkeypatch
     from bandloom.blocks import _bank_params
     knobs = {"shape": None, "taps_per_branch": 12, "rolloff": None, "stopband_db": None, "window": "kaiser",
              "tight_margin": None}
+    monkeypatch.setattr(_bank_params, "cache_folder", lambda: None)     # this test is about the run's folder only
     made = _bank_params.make_design(32, 2, knobs)
     _bank_params.save_designs(tmp_path)
     monkeypatch.setattr(_bank_params, "_DESIGNS", {})
@@ -118,3 +123,51 @@ def test_a_design_handed_over_as_a_file_is_the_same_design(tmp_path, monkeypatch
     other = dict(knobs, taps_per_branch=10)                  # different knobs: not taken for the saved one
     with pytest.raises(AssertionError, match="designed"):
         _bank_params.make_design(32, 2, other, folder=tmp_path)
+
+
+def _design_in_a_new_process(cache, channels, code="", env_extra=None):
+    """make_design in a fresh interpreter with BANDLOOM_CACHE_DIR = ``cache``; returns what ``code`` prints."""
+    script = ("import sys, numpy as np\n"
+              "from bandloom.blocks._bank_params import make_design, cache_folder\n"
+              f"d = make_design({channels}, 2, {{'window': 'kaiser'}})\n" + code)
+    env = dict(os.environ, BANDLOOM_CACHE_DIR=str(cache), **(env_extra or {}))
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, env=env, timeout=120)
+    assert done.returncode == 0, done.stderr
+    return done.stdout
+
+
+def test_a_design_made_once_is_loaded_from_the_users_cache_without_scipy_signal(tmp_path):
+    """The first process designs and keeps the design in the cache folder (0700, file 0600); a second one loads
+    it without importing scipy.signal, and its taps are bit for bit those design_bank makes now."""
+    cache = tmp_path / "designs"
+    _design_in_a_new_process(cache, 48)
+    (kept,) = cache.glob("design-*.npz")
+    assert cache.stat().st_mode & 0o777 == 0o700 and kept.stat().st_mode & 0o077 == 0
+    shown = _design_in_a_new_process(cache, 48, "print('scipy.signal' in sys.modules, d.delay)\n"
+                                                 "print(d.analysis_taps.tobytes().hex())\n")
+    imported, delay, taps = shown.split()
+    fresh = design_bank(48, oversample=2)
+    assert imported == "False"
+    assert taps == fresh.analysis_taps.tobytes().hex() and int(delay) == fresh.delay
+
+
+def test_a_damaged_cached_design_is_made_again(tmp_path):
+    """A cached file that does not load (truncated) is designed afresh and replaced by a good one."""
+    cache = tmp_path / "designs"
+    _design_in_a_new_process(cache, 40)
+    (kept,) = cache.glob("design-*.npz")
+    kept.write_bytes(kept.read_bytes()[:100])
+    shown = _design_in_a_new_process(cache, 40, "print('scipy.signal' in sys.modules, d.delay)\n")
+    assert shown.split() == ["True", str(design_bank(40, oversample=2).delay)]
+    assert kept.stat().st_size > 1000
+
+
+def test_a_cache_folder_others_can_write_to_is_not_used(tmp_path):
+    """A cache folder that other users can write to (0777) could hold designs planted by them: it is not read
+    or written; 'off' turns the cache off."""
+    cache = tmp_path / "shared"
+    cache.mkdir()
+    cache.chmod(0o777)
+    assert _design_in_a_new_process(cache, 24, "print(cache_folder())\n").strip() == "None"
+    assert list(cache.iterdir()) == []
+    assert _design_in_a_new_process("off", 24, "print(cache_folder())\n").strip() == "None"

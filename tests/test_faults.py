@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from runner import descendants, worker_processes
 
 RATE = 1_000_000
 SAMPLE_BYTES = 8        # cf32
@@ -106,18 +107,6 @@ def test_a_full_disk_is_an_error_naming_the_file_and_the_metadata_stays_valid(tm
         subprocess.run(["umount", "-l", str(out)], check=False)
 
 
-def descendants(pid):
-    """Every process below ``pid`` (read from /proc)."""
-    found, todo = [], [pid]
-    while todo:
-        parent = todo.pop()
-        for task in Path(f"/proc/{parent}/task").iterdir():
-            children = (task / "children").read_text().split()
-            found += [int(c) for c in children]
-            todo += [int(c) for c in children]
-    return found
-
-
 def alive(pid):
     try:
         state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
@@ -139,10 +128,10 @@ def test_workers_notice_the_supervisor_is_killed_within_a_second_and_remove_the_
     while not (data.exists() and data.stat().st_size > 100_000):
         assert time.monotonic() < deadline and supervisor.poll() is None, supervisor.stderr.read().decode()
         time.sleep(0.05)
-    workers = descendants(supervisor.pid)
-    folders = {Path(arg).parent for pid in workers
-               for arg in Path(f"/proc/{pid}/cmdline").read_bytes().decode().split("\0") if arg.endswith(".json")}
-    assert len(workers) == 2 and len(folders) == 1
+    titles = worker_processes(below=supervisor.pid)
+    workers = descendants(supervisor.pid)            # the two workers and the launcher that forked them
+    folders = {spec.parent for _, spec in titles.values()}
+    assert len(titles) == 2 and len(workers) == 3 and len(folders) == 1
     (folder,) = folders
     assert folder.parent == Path(tempfile.gettempdir()) and folder.is_dir()
     os.kill(supervisor.pid, signal.SIGKILL)

@@ -1,5 +1,7 @@
 """One link's two ends over a real ipc socket: delivery, gaps, end of stream, drops, and their counters."""
 
+import time
+
 import numpy as np
 import pytest
 import zmq
@@ -17,12 +19,12 @@ def ends(tmp_path):
     context = zmq.Context()
     made = []
 
-    def make(*, queue=8, when_full=WhenFull.WAIT, columns=None, stream=STREAM):
+    def make(*, queue=8, when_full=WhenFull.WAIT, columns=None, stream=STREAM, batch_seconds=0.0):
         endpoint = f"ipc://{tmp_path}/link-{len(made)}"
         receiving = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=stream if columns is None
                              else stream.select(list(columns)), bind=True, queue=queue)
         sending = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=receiving.stream,
-                           columns=columns, queue=queue, when_full=when_full)
+                           columns=columns, queue=queue, when_full=when_full, batch_seconds=batch_seconds)
         inlet = Inlet(context, receiving, "in")
         outlet = Outlet(context, sending, lambda: False)
         made.extend([outlet, inlet])
@@ -164,3 +166,62 @@ def test_the_receiver_counts_rows_a_sender_skipped_without_saying_so(ends):
     assert inlet.stats().missing == 15
     with pytest.raises(wire.WireError, match="message 2 starts at row 30, before the 35 rows already received"):
         inlet.receive()
+
+
+def test_small_chunks_wait_to_fill_a_message_of_batch_bytes(ends, rng):
+    """With a latency, 1000-row chunks (8 KB) travel in messages of BATCH_BYTES (256 KiB = 32768 rows) and the
+    rest at the end of stream; every row once, in order; rows waiting are reported as held, not sent."""
+    from bandloom.runtime.links import BATCH_BYTES
+    outlet, inlet = ends(batch_seconds=60.0)
+    data = (rng.standard_normal(70_000) + 1j * rng.standard_normal(70_000)).astype(np.complex64)
+    for start in range(0, 70_000, 1000):
+        outlet.send(Chunk(data[start:start + 1000], start))
+    rows = BATCH_BYTES // 8
+    assert outlet.stats().rows == 2 * rows and outlet.stats().held_rows == 70_000 - 2 * rows
+    outlet.end()
+    parts = []
+    while (chunk := inlet.receive()) is not None:
+        parts.append(chunk)
+    assert [p.first_index for p in parts] == [0, rows, 2 * rows]
+    assert [p.count for p in parts] == [rows, rows, 70_000 - 2 * rows]
+    assert np.array_equal(np.concatenate([p.data for p in parts]), data)
+    sent = outlet.stats()
+    assert sent.rows == inlet.stats().rows == 70_000 and sent.held_rows == 0 and sent.messages == 3
+
+
+def test_a_gap_ends_the_batch_and_the_next_message_carries_it(ends):
+    """A chunk that jumps ahead sends what waits first; the message after the jump is flagged with the gap."""
+    outlet, inlet = ends(batch_seconds=60.0)
+    outlet.send(Chunk(np.ones(100, np.complex64), 0))
+    outlet.send(Chunk(np.ones(100, np.complex64), 100))
+    outlet.send(Chunk(np.ones(50, np.complex64), 230))
+    outlet.end()
+    first, second = inlet.receive(), inlet.receive()
+    assert (first.first_index, first.count, first.dropped) == (0, 200, 0)
+    assert (second.first_index, second.count, second.dropped, second.discontinuity) == (230, 50, 30, True)
+    assert inlet.receive() is None and inlet.stats().missing == 30 == outlet.stats().missing_rows
+
+
+def test_a_waiting_batch_goes_once_its_latency_has_passed(ends):
+    """Rows wait at most the link's latency: after it, flush_if_due (what a worker calls while idle) sends them."""
+    outlet, inlet = ends(batch_seconds=0.1)
+    outlet.send(Chunk(np.ones(10, np.complex64), 0))
+    outlet.flush_if_due()
+    assert outlet.holding and not inlet.sock.poll(50)
+    time.sleep(0.15)
+    outlet.flush_if_due()
+    assert not outlet.holding and inlet.receive().count == 10
+
+
+def test_channels_picked_as_a_run_of_neighbours_are_sent_without_a_copy(ends):
+    """All the channels of a stream (a slice of neighbours) go as the block's own array, counted as no copy;
+    a gather of scattered channels is counted as copied bytes."""
+    wide = StreamInfo("channels", "cf32", 1e4, 0.0, channels=(0, 1, 2, 3), channel_frequencies=(0.0, 1.0, 2.0, 3.0))
+    frames = np.arange(40_000, dtype=np.complex64).reshape(10_000, 4)
+    outlet, inlet = ends(columns=(0, 1, 2, 3), stream=wide)
+    outlet.send(Chunk(frames, 0))
+    assert np.array_equal(inlet.receive().data, frames) and outlet.stats().copied_bytes == 0
+    outlet, inlet = ends(columns=(3, 0), stream=wide)
+    outlet.send(Chunk(frames, 0))
+    assert np.array_equal(inlet.receive().data, frames[:, [3, 0]])
+    assert outlet.stats().copied_bytes == frames[:, [3, 0]].nbytes

@@ -14,6 +14,7 @@ import sys
 import time
 
 import numpy as np
+from runner import worker_processes
 
 RATE = 400_000          # input samples per second; 8 channels, twice oversampled: 100,000 per channel
 
@@ -50,22 +51,8 @@ to = "split.samples"
 
 
 def worker_pids(name):
-    """PIDs of the worker processes running block instance ``name`` (read from their spec files)."""
-    found = []
-    for entry in os.listdir("/proc"):
-        if not entry.isdigit():
-            continue
-        try:
-            with open(f"/proc/{entry}/cmdline", "rb") as handle:
-                args = handle.read().split(b"\0")
-            if b"bandloom.runtime.worker" not in args:
-                continue
-            with open(args[args.index(b"bandloom.runtime.worker") + 1]) as handle:
-                if json.load(handle)["name"] == name:
-                    found.append(int(entry))
-        except (OSError, ValueError, IndexError):
-            continue
-    return found
+    """PIDs of the worker processes running block instance ``name`` (from their process titles)."""
+    return [pid for pid, (instance, _) in worker_processes().items() if instance == name]
 
 
 def kill_when_written(name, path, size, *, not_pid=None, timeout=60):

@@ -6,7 +6,6 @@ import subprocess
 import sys
 import textwrap
 import time
-from pathlib import Path
 
 import msgpack
 import numpy as np
@@ -14,7 +13,7 @@ import pytest
 import zmq
 from bandloom.blocks.dsp import design_bank
 from conftest import complex_noise
-from runner import bandloom, run_flow
+from runner import bandloom, run_flow, worker_processes
 
 RATE = 1.6e6
 CENTRE = 156.0e6
@@ -302,14 +301,9 @@ def test_dead_block_is_named_and_run_fails(tmp_path):
     deadline = time.monotonic() + 60
     while victim is None and time.monotonic() < deadline:
         time.sleep(0.3)
-        out = subprocess.run(["pgrep", "-P", str(runner.pid), "-f", "bandloom.runtime.worker"],
-                             capture_output=True, text=True).stdout.split()
-        for pid in out:                                      # the channelizer is the second instance
-            try:
-                if Path(f"/proc/{pid}/cmdline").read_bytes().endswith(b"spec-1.json\x00"):
-                    victim = int(pid)
-            except OSError:
-                pass
+        for pid, (_, spec) in worker_processes(below=runner.pid).items():
+            if spec.name == "spec-1.json":                  # the channelizer is the second instance
+                victim = pid
     assert victim is not None
     time.sleep(2.0)
     os.kill(victim, 9)

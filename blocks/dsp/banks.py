@@ -42,7 +42,6 @@ from importlib import import_module
 from types import ModuleType
 
 import numpy as np
-import scipy.fft
 
 from .errors import ParameterError
 
@@ -195,6 +194,7 @@ class AnalysisBank:
             self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
                 else x[len(x) - keep:].copy()
         if len(out):
+            import scipy.fft  # here rather than at the top: checking a flow need not load it
             out = scipy.fft.fft(out, axis=1, overwrite_x=True, workers=1)
         return out.astype(np.complex64, copy=False)
 
@@ -290,6 +290,7 @@ class SynthesisBank:
         count = len(frames)
         if count == 0:
             return np.zeros(0, dtype=np.complex64)
+        import scipy.fft
         periodic = scipy.fft.ifft(frames.astype(self._work_dtype, copy=False), axis=1,
                                   norm="forward", workers=1)
         periodic = np.ascontiguousarray(periodic, dtype=self._work_dtype)

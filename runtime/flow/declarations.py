@@ -75,6 +75,9 @@ LINK_OPTIONS: tuple[Param, ...] = (
           rule="a whole number of messages from 1 to 100000"),
     Param("when_full", "choice", "what a full link does", default="wait", choices=tuple(w.value for w in WhenFull),
           rule="'wait' (lossless, slows the producer) or 'drop' (counted, flagged drops)"),
+    Param("latency", "quantity", "how long rows may wait in the sender to fill a fuller message (up to 256 KiB): "
+          "fewer, larger messages for narrow channels; 0 sends each chunk as the block made it (endpoints always "
+          "do)", default=0.05, unit="s", minimum=0.0, maximum=10.0, rule="a duration from 0 s to 10 s"),
     Param("insecure", "bool", "send an endpoint reachable from other machines in the clear", default=False),
     Param("keys", "str", "folder made by 'bandloom keys' (endpoints)", default=None,
           rule="a folder made by 'bandloom keys' holding server.key_secret"),

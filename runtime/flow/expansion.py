@@ -273,7 +273,8 @@ class _Expander:
             link = Link(id=len(self.links), where=feed.where, source=feed.source, source_port=feed.source_port,
                         columns=feed.columns, target=inst_name, target_port=port_name, endpoint=None,
                         stream=feed.stream, options=LinkOptions(queue=feed.options.queue,
-                                                                when_full=feed.options.when_full))
+                                                                when_full=feed.options.when_full,
+                                                                latency=feed.options.latency))
             inputs[port_name] = link
             self.instances[feed.source].outputs.setdefault(feed.source_port, []).append(link)
             self.links.append(link)

@@ -57,6 +57,7 @@ class LinkOptions:
 
     queue: int = 8
     when_full: WhenFull = WhenFull.WAIT
+    latency: float = 0.05            # s that rows may wait in the sender to fill a message (0: none)
     insecure: bool = False
     keys: str | None = None          # folder made by 'bandloom keys', resolved against the flow's folder
     tolerance: float | None = None   # Hz, for selection by frequency

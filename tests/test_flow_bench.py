@@ -1,0 +1,65 @@
+"""bandloom bench --flow: a real flow run at two lengths, its figures held to what the flow must move."""
+
+import json
+
+from runner import bandloom
+
+FLOW = """
+[blocks.band]
+type = "scenario"
+sample_rate = "4 MHz"
+duration = "1 s"
+noise = "-40 dBFS"
+
+[blocks.split]
+type = "channelizer"
+channels = 16
+oversample = 2
+
+[blocks.sink]
+type = "discard"
+
+[[links]]
+from = "band.samples"
+to = "split.samples"
+
+[[links]]
+from = "split.channels"
+to = "sink.samples"
+"""
+
+
+def test_bench_flow_measures_both_lengths_and_what_each_link_carries(tmp_path):
+    """Two runs (1 s and 4 s of a 4 MHz scenario): the input counts are exact, the steady rate and the
+    in-process ratio are positive numbers, start-up is shorter than the run, and the bytes per input sample
+    are what the flow must move: 8 for cf32 samples; a channelizer at M/D = 2 emits 2 complex values per input
+    sample, 16 bytes (design.md section 3: M channels every D samples)."""
+    flow = tmp_path / "bench.toml"
+    flow.write_text(FLOW)
+    done = bandloom("bench", "--flow", flow, "--runs", "1", "--lengthen", "4", "--json")
+    assert done.returncode == 0, done.stderr
+    result = json.loads(done.stdout)
+    assert result["short"]["input_samples"] == 4_000_000 and result["long"]["input_samples"] == 16_000_000
+    assert result["steady_input_rate"] > 0
+    assert 0 < result["short"]["startup_seconds"] < result["short"]["seconds"]
+    assert result["in_process"]["split"]["rate"] > 0 and result["in_process"]["split"]["ratio"] > 0
+    links = {x["link"]: x for x in result["links"]}
+    assert links["band.samples -> split.samples"]["bytes_per_input_sample"] == 8
+    assert links["split.channels -> sink.samples"]["bytes_per_input_sample"] == 16
+    # All channels go as the bank's own array (a view, no copy); only the last, short chunk of the source
+    # (16,000,000 mod 65,536 samples) makes a message small enough to wait in a batch, a copy.
+    tail_frames = 16_000_000 % 65_536 // 8
+    assert links["split.channels -> sink.samples"]["copied_bytes_per_input_sample"] == tail_frames * 16 * 8 / 16e6
+    busy = {b["block"]: b["busy_fraction"] for b in result["blocks"]}
+    assert 0 < busy["split"] <= 1.0
+
+
+def test_bench_flow_refuses_a_source_whose_length_it_cannot_set(tmp_path):
+    """A live source has no length to scale: the refusal names the block and what would do, in one line."""
+    flow = tmp_path / "live.toml"
+    flow.write_text('[blocks.rx]\ntype = "stdin-reader"\nsample_rate = 1000\n'
+                    '[blocks.sink]\ntype = "discard"\n[[links]]\nfrom = "rx.samples"\nto = "sink.samples"\n')
+    done = bandloom("bench", "--flow", flow, "--runs", "1")
+    assert done.returncode == 2
+    assert "block 'rx' (stdin-reader) has no parameter that sets its length" in done.stderr
+    assert "Traceback" not in done.stderr
