@@ -56,13 +56,14 @@ from .flow.model import WhenFull
 from .keys import load_server_keys
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet",
-           "POLL_MS", "QUEUE_BYTES", "configure", "secure_server"]
+__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet",
+           "POLL_MS", "QUEUE_BYTES", "column_major", "configure", "secure_server"]
 
 MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
 QUEUE_BYTES = 256 << 20                       # samples a link's queue holds at each end, bytes at most
 BATCH_BYTES = 256 << 10                       # smaller messages wait for more rows (for batch_seconds at most)
 POLL_MS = 200
+COLUMN_MAJOR_LINKS = 8                        # this many single-channel links share one transposed copy
 BATCH_POLL_MS = 20                            # how often a worker looks at waiting batches while idle
 
 
@@ -122,6 +123,20 @@ def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) 
     sock.curve_publickey = public
     sock.curve_server = True
     return authenticator
+
+
+def column_major(chunk: Chunk, outlets: list[Outlet]) -> list[np.ndarray | None]:
+    """For each outlet, its one column of ``chunk`` if it takes one and many others do too, else None.
+
+    Taking one column out of a wide row-major chunk reads every row for a few bytes each; done for each
+    of M single-channel links that is M passes over the chunk. Many such links share one transposed copy
+    instead (one pass), each then sending its own contiguous row of it.
+    """
+    singles = [o for o in outlets if isinstance(o.columns, int)]
+    if len(singles) < COLUMN_MAJOR_LINKS or chunk.data.ndim != 2 or not len(chunk.data):
+        return [None] * len(outlets)
+    transposed = np.ascontiguousarray(chunk.data.T)
+    return [transposed[o.columns] if isinstance(o.columns, int) else None for o in outlets]
 
 
 def _column_picker(columns: tuple[int, ...] | None) -> int | slice | list[int] | None:
@@ -228,10 +243,15 @@ class Outlet(_LinkEnd):
         self.blocked_seconds += time.monotonic() - started
         return True
 
-    def send(self, chunk: Chunk) -> None:
+    def send(self, chunk: Chunk, *, picked: np.ndarray | None = None) -> None:
         """Send a chunk (the link's columns of it): whole messages of at most ``rows_per_message`` rows go
-        now; rows that would make a message smaller than a batch wait (see the module doc)."""
-        data = chunk.data if self.columns is None else chunk.data[:, self.columns]
+        now; rows that would make a message smaller than a batch wait (see the module doc). ``picked`` is
+        the link's one column already taken out by the caller (see :func:`column_major`)."""
+        if picked is not None:
+            data = picked
+            self.copied_bytes += picked.nbytes           # its share of the caller's one transposing copy
+        else:
+            data = chunk.data if self.columns is None else chunk.data[:, self.columns]
         if self._held and (chunk.first_index != self._held_end or chunk.discontinuity):
             self.flush()                       # a jump in the stream starts a message of its own
         start = 0
@@ -244,7 +264,7 @@ class Outlet(_LinkEnd):
             return
         rest = data[start:]
         contiguous = np.ascontiguousarray(rest, dtype=self.stream.dtype)
-        if not np.may_share_memory(contiguous, rest):      # a gather of columns, or another sample type
+        if picked is None and not np.may_share_memory(contiguous, rest):   # a gather, or another sample type
             self.copied_bytes += contiguous.nbytes
         step = self.rows_per_message
         for offset in range(0, len(contiguous), step):

@@ -43,7 +43,7 @@ from . import wire
 from ._memory import reuse_chunk_buffers
 from .control import Control, ControlWord, StatsMessage, WorkerEvent
 from .endpoints import EndpointOutlet
-from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet
+from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet, column_major
 from .plugins import load_registry
 from .worker_spec import WorkerSpec
 
@@ -183,8 +183,9 @@ class Worker:
         for port, chunks in (produced or {}).items():
             for chunk in chunks if isinstance(chunks, list) else [chunks]:
                 self.rows_out += chunk.count
-                for outlet in self.outlets.get(port, []):
-                    outlet.send(chunk)
+                outlets = self.outlets.get(port, [])
+                for outlet, picked in zip(outlets, column_major(chunk, outlets)):
+                    outlet.send(chunk, picked=picked)
 
     def wait_for_go(self) -> None:
         """The start barrier: a source produces nothing until every process of the flow has opened its

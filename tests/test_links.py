@@ -225,3 +225,24 @@ def test_channels_picked_as_a_run_of_neighbours_are_sent_without_a_copy(ends):
     outlet.send(Chunk(frames, 0))
     assert np.array_equal(inlet.receive().data, frames[:, [3, 0]])
     assert outlet.stats().copied_bytes == frames[:, [3, 0]].nbytes
+
+
+def test_many_single_channel_links_share_one_transposed_copy(ends):
+    """Eight links of one channel each take their columns from one transposed copy of the chunk: each gets
+    exactly its channel, contiguous, and counts its row of that copy as copied."""
+    from bandloom.runtime.links import COLUMN_MAJOR_LINKS, column_major
+    width = COLUMN_MAJOR_LINKS
+    wide = StreamInfo("channels", "cf32", 1e4, 0.0, channels=tuple(range(width)),
+                      channel_frequencies=tuple(float(c) for c in range(width)))
+    pairs = [ends(columns=(c,), stream=wide) for c in range(width)]
+    frames = (np.arange(5000 * width) * (1 + 1j)).astype(np.complex64).reshape(5000, width)
+    chunk = Chunk(frames, 0)
+    outlets = [outlet for outlet, _ in pairs]
+    picked = column_major(chunk, outlets)
+    assert all(p is not None and p.flags["C_CONTIGUOUS"] for p in picked)
+    for outlet, one in zip(outlets, picked):
+        outlet.send(chunk, picked=one)
+    for c, (outlet, inlet) in enumerate(pairs):
+        assert np.array_equal(inlet.receive().data, frames[:, c])
+        assert outlet.stats().copied_bytes == frames[:, c].nbytes
+    assert column_major(chunk, outlets[:width - 1]) == [None] * (width - 1)     # too few to be worth it
