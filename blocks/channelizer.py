@@ -16,6 +16,11 @@ from .params import MAX_CHANNELS
 __all__ = ["Channelizer", "Synthesis"]
 
 
+THREADS = Param("threads", "int", "threads that share the bank's work, with output identical to one thread; they "
+               "pay off for chunks of 256 Ki input samples or more (the source's chunk_size)", default=1, minimum=1,
+               maximum=64)
+
+
 def _warm_banks() -> None:
     """Load the banks' compiled kernels (numba's cache) and run each once on a few samples."""
     from .dsp.banks import AnalysisBank, SynthesisBank
@@ -36,6 +41,7 @@ class Channelizer(Block):
               "2 or more for exact reconstruction", default=2, minimum=1, maximum=64),
         Param("grid_offset", "quantity", "put the channel raster's centre this far from the stream's centre "
               "frequency (the band is shifted before the bank)", default=0.0, unit="Hz"),
+        THREADS,
     ) + DESIGN_PARAMS
     inputs = (Port("samples", "samples", "wideband IQ"),)
     outputs = (Port("channels", "channels", "all channels side by side; links pick channels with 'select'"),)
@@ -66,7 +72,7 @@ class Channelizer(Block):
             design=knobs, start_time=wide.start_time)}
 
     def start(self, inputs: dict[str, StreamInfo]) -> None:
-        self.bank = self._design().analysis_bank()
+        self.bank = self._design().analysis_bank(threads=self.params["threads"])
         self.shift = (self.params.get("grid_offset") or 0.0) / inputs["samples"].sample_rate
 
     def consume(self, port: str, chunk: Chunk) -> Output:
@@ -115,6 +121,7 @@ class Synthesis(Block):
               "linked channels, which must be adjacent, at the group's own rate (channels x oversample channel "
               "spacings) and centred on the group, from a bank of that size", default="band",
               choices=("band", "group")),
+        THREADS,
     ) + tuple(replace(p, doc=p.doc.split(" (default")[0] + " (default: the channelizer's)", default=None)
               for p in DESIGN_PARAMS)
     inputs = (Port("channels", "channels", "channels from a channelizer; missing channels count as silence"),)
@@ -191,7 +198,7 @@ class Synthesis(Block):
             self.design = group.design
             self.columns = np.asarray(group.positions)
             self.shift = -group.offset / group.rate
-        self.bank = self.design.synthesis_bank()
+        self.bank = self.design.synthesis_bank(threads=self.params["threads"])
 
     def consume(self, port: str, chunk: Chunk) -> Output:
         out = []

@@ -37,6 +37,8 @@ def add_arguments(parser: ArgumentParser) -> None:
     parser.add_argument("--samples", type=int, default=1 << 21, help="input samples per case")
     parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
     parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
+    parser.add_argument("--threads", type=int, default=1, help="also time both banks with this many threads "
+                        "against one (they pay off with --chunk 262144 or more)")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
     flows = parser.add_argument_group("a whole flow (docs/performance.md)")
     flows.add_argument("--flow", help="measure this flow file instead of the banks: steady rate, start-up, the "
@@ -59,7 +61,7 @@ def _best(function: Callable[[], object], repeats: int) -> float:
 
 
 def measure_case(channels: int, taps_per_branch: int, oversample: int, *, samples: int, chunk: int, repeats: int,
-                 seed: int = 0) -> dict[str, Any]:
+                 seed: int = 0, threads: int = 1) -> dict[str, Any]:
     """Time one case; return a dict of throughputs and ratios."""
     import scipy.fft
     from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, cost_ratio
@@ -74,6 +76,7 @@ def measure_case(channels: int, taps_per_branch: int, oversample: int, *, sample
     pieces = [x[i:i + chunk] for i in range(0, samples, chunk)]
     analysis = AnalysisBank(M, D, taps)
     synthesis = SynthesisBank(M, D, taps)
+    shared = AnalysisBank(M, D, taps, threads=threads), SynthesisBank(M, D, taps, threads=threads)
     frames: list[np.ndarray] = []
 
     def run_analysis() -> None:
@@ -84,6 +87,18 @@ def measure_case(channels: int, taps_per_branch: int, oversample: int, *, sample
         synthesis.reset()
         for f in frames:
             synthesis.process(f)
+
+    def run_threaded() -> None:           # both banks with ``threads`` threads, on the same chunks
+        shared[0].reset()
+        shared[1].reset()
+        for p in pieces:
+            shared[1].process(shared[0].process(p))
+
+    def run_both() -> None:               # the same with one thread, to compare with run_threaded
+        analysis.reset()
+        synthesis.reset()
+        for p in pieces:
+            synthesis.process(analysis.process(p))
 
     run_analysis()                                  # warm up (numba cache load, page faults)
     run_synthesis()
@@ -103,9 +118,13 @@ def measure_case(channels: int, taps_per_branch: int, oversample: int, *, sample
         for w in scratch["ifft"]:
             scipy.fft.ifft(w, axis=1, workers=1, overwrite_x=True)
 
-    cases = (("analysis", run_analysis, None), ("fft", run_fft, forward),
-             ("synthesis", run_synthesis, None), ("ifft", run_ifft, inverse))
-    best = dict.fromkeys(("analysis", "fft", "synthesis", "ifft"), float("inf"))
+    cases: list[tuple[str, Callable[[], None], list[np.ndarray] | None]] = [
+        ("analysis", run_analysis, None), ("fft", run_fft, forward),
+        ("synthesis", run_synthesis, None), ("ifft", run_ifft, inverse)]
+    if threads > 1:
+        run_threaded()
+        cases += [("one thread", run_both, None), ("threads", run_threaded, None)]
+    best = dict.fromkeys([name for name, _, _ in cases], float("inf"))
     for _ in range(repeats):
         for name, function, source in cases:
             if source is not None:                  # fresh input for the in-place transforms, untimed
@@ -120,6 +139,8 @@ def measure_case(channels: int, taps_per_branch: int, oversample: int, *, sample
         "synthesis_msps": samples / t_synthesis / 1e6,
         "synthesis_ratio": t_synthesis / t_ifft,
         "model_ratio": float(cost_ratio(R, M)),
+        "threads": threads,
+        "thread_speedup": best["one thread"] / best["threads"] if threads > 1 else None,
     }
 
 
@@ -135,7 +156,8 @@ def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = N
             continue
         if progress:
             progress(f"bench {i + 1}/{len(cases)}: M={m} R={r} M/D={p}")
-        results.append(measure_case(m, r, p, samples=args.samples, chunk=args.chunk, repeats=args.repeats))
+        results.append(measure_case(m, r, p, samples=args.samples, chunk=args.chunk, repeats=args.repeats,
+                                    threads=args.threads))
     if progress:
         progress("")                  # the progress line is cleared before any result is written
     if args.json:
@@ -146,6 +168,13 @@ def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = N
     rows = [[r["channels"], r["taps_per_branch"], r["oversample"], round(r["analysis_msps"], 1),
              round(r["analysis_ratio"], 2), round(r["synthesis_msps"], 1), round(r["synthesis_ratio"], 2),
              round(r["model_ratio"], 2)] for r in results]
+    if args.threads > 1:
+        headers.append(f"{args.threads} threads / 1")
+        for row, r in zip(rows, results):
+            row.append(round(r["thread_speedup"], 2))
     out.write(render_rows(headers, rows) + "\n")
     out.write("Ratios are bank time over a bare scipy.fft of the same frames, same run, one core.\n")
+    if args.threads > 1:
+        out.write(f"'{args.threads} threads / 1': throughput of analysis then synthesis with threads = {args.threads} "
+                  f"over one thread, same chunks, same run (identical output).\n")
     return 0

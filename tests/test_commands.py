@@ -55,6 +55,17 @@ def test_bench_json_reports_ratios_measured_in_the_same_run():
     for c in cases:
         assert c["analysis_ratio"] > 0 and c["synthesis_ratio"] > 0 and c["analysis_msps"] > 0
         assert c["model_ratio"] == pytest.approx(1 + 4 / 6)
+        assert c["threads"] == 1 and c["thread_speedup"] is None
+
+
+def test_bench_with_threads_reports_the_speedup_over_one_thread():
+    """bench --threads 2 adds, per case, the throughput of both banks with two threads over one (measured in
+    the same run; no speed is asserted, only that it was measured)."""
+    done = bandloom("bench", "--channels", "256", "--taps-per-branch", "4", "--oversample", "2", "--samples",
+                    "524288", "--chunk", "262144", "--repeats", "1", "--threads", "2", "--json")
+    assert done.returncode == 0, done.stderr
+    (case,) = json.loads(done.stdout)
+    assert case["threads"] == 2 and case["thread_speedup"] > 0
 
 
 def test_version_is_pyprojects_from_the_command_the_module_and_the_package():

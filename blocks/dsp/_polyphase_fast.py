@@ -64,16 +64,19 @@ def _fold_jit(buffer2, reversed_taps, channels: int, starts, offsets, out2) -> N
 
 
 @njit(cache=True, fastmath=True, nogil=True)
-def _spread_jit(frames2, taps: np.ndarray, decimation: int, channels: int, phase, out2) -> None:
+def _spread_jit(frames2, taps: np.ndarray, decimation: int, channels: int, phase, out2, start: int, stop: int) -> None:
     n_taps = taps.shape[0]
     M = channels
     for f in range(frames2.shape[0]):
         base = f * decimation
-        pos = (phase + f * decimation) % M
+        j = max(0, start - base)            # only what lands in out[start:stop]
+        end = min(n_taps, stop - base)
+        if j >= end:
+            continue
+        pos = (phase + base + j) % M
         frame = frames2[f]
-        j = 0
-        while j < n_taps:
-            run = min(M - pos, n_taps - j)
+        while j < end:
+            run = min(M - pos, end - j)
             _multiply_add(out2[2 * (base + j):2 * (base + j + run)], taps[j:j + run], frame[2 * pos:2 * (pos + run)])
             j += run
             pos = 0
@@ -97,7 +100,8 @@ def fold_frames(buffer, prepared_taps, channels: int, starts, offsets, out: np.n
               out.view(np.float32))
 
 
-def spread_frames(frames, prepared_taps, decimation: int, channels: int, phase, out: np.ndarray) -> None:
+def spread_frames(frames, prepared_taps, decimation: int, channels: int, phase, out: np.ndarray, start: int = 0,
+                  stop: int | None = None) -> None:
     """Fast ``spread_frames``: ``frames`` and ``out`` complex64 C-contiguous (added to ``out``)."""
     _spread_jit(frames.view(np.float32), prepared_taps, decimation, channels,
-                phase, out.view(np.float32))
+                phase, out.view(np.float32), start, len(out) if stop is None else stop)

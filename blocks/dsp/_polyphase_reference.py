@@ -60,16 +60,19 @@ def fold_frames(buffer: np.ndarray, prepared_taps: np.ndarray, channels: int, st
 
 
 def spread_frames(frames: np.ndarray, prepared_taps: np.ndarray, decimation: int, channels: int, phase: int,
-                  out: np.ndarray) -> None:
-    """Overlap-add periodic frames into ``out`` (added in place).
+                  out: np.ndarray, start: int = 0, stop: int | None = None) -> None:
+    """Overlap-add periodic frames into ``out`` (added in place), only into ``out[start:stop]``.
 
     ``prepared_taps`` comes from ``prepare_spread_taps(taps)``.
     ``frames`` has shape ``(F, channels)``; frame ``f`` is a period-M sequence
     and starts ``f * decimation`` samples into ``out``. Output sample
     ``f * decimation + j`` gains ``taps[j] * frames[f, (phase + f * decimation + j) % M]``
     for ``j`` in ``0 .. len(taps) - 1``. ``phase`` is the absolute index of
-    ``out[0]`` modulo M. ``out`` needs ``(F - 1) * decimation + len(taps)`` samples.
+    ``out[0]`` modulo M. ``out`` needs ``(F - 1) * decimation + len(taps)`` samples. Samples outside
+    ``[start, stop)`` gain nothing (so threads can share ``out``, each its own range, every sample summed
+    over the frames in the same order as in one call).
     """
+    stop = len(out) if stop is None else stop
     g = prepared_taps
     L = len(g)
     M = channels
@@ -83,4 +86,5 @@ def spread_frames(frames: np.ndarray, prepared_taps: np.ndarray, decimation: int
         index = (phase + f[:, None] * D + j[None, :]) % M
         contributions = g[None, :] * np.take_along_axis(block, index, axis=1)
         target = f[:, None] * D + j[None, :]
-        np.add.at(out, target.ravel(), contributions.ravel())
+        inside = (target >= start) & (target < stop)
+        np.add.at(out, target[inside], contributions[inside])

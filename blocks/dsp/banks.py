@@ -34,10 +34,17 @@ sum), then one M-point FFT. Synthesis is the mirror: one inverse FFT per
 frame, then a weighted periodic overlap-add. The hot loops run in numba
 (``kernel="fast"``, complex64 arithmetic) or in plain numpy
 (``kernel="reference"``, float64 arithmetic, results rounded to complex64).
+With ``threads=N`` the frames of a chunk are folded and transformed
+(analysis), or transformed and their output samples spread (synthesis), by N
+threads, each its own share; every number is computed exactly as with one thread, in the
+same order, so the output is bit for bit the same.
 """
 
 from __future__ import annotations
 
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from importlib import import_module
 from types import ModuleType
 
@@ -87,6 +94,67 @@ def _check_kernel(kernel: str) -> str:
     return kernel
 
 
+#: The least work (taps x frames, or output samples x taps / interpolation) worth sharing between threads.
+_MIN_SHARED_WORK = 1 << 18
+_SHARES_PER_THREAD = 1
+
+
+def _check_threads(threads: int) -> int:
+    if isinstance(threads, bool) or not isinstance(threads, (int, np.integer)) or not 1 <= threads <= 64:
+        raise ParameterError(f"Parameter threads={threads!r} is not an integer from 1 to 64!", param="threads")
+    return int(threads)
+
+
+class _Shares:
+    """Splits ``count`` items of work into contiguous shares that up to ``threads`` threads take one after
+    another (the calling thread is one of them); one thread, or too little work, runs it all here.
+
+    There are several shares per thread: the numba kernels run without the GIL, but scipy.fft holds it while
+    it transforms, so one thread's transform overlaps the others' folding only when the work comes in pieces.
+    """
+
+    def __init__(self, threads: int) -> None:
+        self.threads = threads
+        self._pool: ThreadPoolExecutor | None = None
+
+    def run(self, count: int, work_per_item: int, task: Callable[[int, int], None]) -> None:
+        shares = min(_SHARES_PER_THREAD * self.threads, count, max(1, count * work_per_item // _MIN_SHARED_WORK))
+        if self.threads == 1 or shares <= 1:
+            if count:
+                task(0, count)
+            return
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=self.threads - 1, thread_name_prefix="bank")
+        edges = [count * i // shares for i in range(shares + 1)]
+        queue = iter(range(shares))
+        lock = threading.Lock()
+
+        def take_shares() -> None:
+            while True:
+                with lock:
+                    i = next(queue, None)
+                if i is None:
+                    return
+                task(edges[i], edges[i + 1])
+        helpers = [self._pool.submit(take_shares) for _ in range(self.threads - 1)]
+        take_shares()
+        for helper in helpers:
+            helper.result()
+
+
+def _fft_rows(rows: np.ndarray, *, inverse: bool = False) -> None:
+    """Each row of ``rows`` replaced by its FFT (``inverse``: its inverse FFT without the 1/M), in place."""
+    import scipy.fft  # here rather than at the top: checking a flow need not load it
+    if not len(rows):
+        return
+    if inverse:
+        result = scipy.fft.ifft(rows, axis=1, norm="forward", overwrite_x=True, workers=1)
+    else:
+        result = scipy.fft.fft(rows, axis=1, overwrite_x=True, workers=1)
+    if not np.may_share_memory(result, rows):
+        rows[...] = result
+
+
 def channel_offsets(channels: int) -> np.ndarray:
     """Channel centre offsets in cycles per input sample, FFT order (see module doc)."""
     return np.fft.fftfreq(channels)
@@ -115,6 +183,8 @@ class AnalysisBank:
         Real prototype low-pass taps h, any length; their sum is the passband gain.
     kernel : {"fast", "reference"}, keyword-only
         The numba kernel (complex64 arithmetic) or the plain numpy one (float64).
+    threads : int, keyword-only
+        Threads that share each chunk's frames and FFTs (1 to 64; output identical to one thread).
 
     Notes
     -----
@@ -135,10 +205,12 @@ class AnalysisBank:
     ((16, 8), 1, 1.0)
     """
 
-    def __init__(self, channels: int, decimation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:
+    def __init__(self, channels: int, decimation: int, taps: np.ndarray, *, kernel: str = "fast",
+                 threads: int = 1) -> None:
         self._channels, self._decimation = _check_geometry(channels, decimation, "decimation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
+        self._shares = _Shares(_check_threads(threads))
         self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
         self._prepared = self._kernel.prepare_fold_taps(self._taps)
@@ -148,6 +220,7 @@ class AnalysisBank:
     decimation = property(lambda self: self._decimation, doc="Decimation D (input samples per frame).")
     taps = property(lambda self: self._taps, doc="Prototype taps h (read-only float64 array).")
     kernel = property(lambda self: self._kernel_name, doc="'fast' (numba) or 'reference' (numpy).")
+    threads = property(lambda self: self._shares.threads, doc="Threads sharing each chunk's work.")
     output_rate_ratio = property(lambda self: 1.0 / self._decimation,
                                  doc="Channel sample rate divided by input sample rate (1/D).")
     oversampling = property(lambda self: self._channels // self._decimation, doc="M // D.")
@@ -158,7 +231,7 @@ class AnalysisBank:
 
     def __repr__(self) -> str:
         return (f"AnalysisBank(channels={self._channels}, decimation={self._decimation}, "
-                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
+                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r}, threads={self.threads})")
 
     def reset(self) -> None:
         """Forget all input: the next sample given is absolute sample 0 again."""
@@ -187,15 +260,18 @@ class AnalysisBank:
         if boundary:
             joined = np.concatenate([self._history, x[:min(len(x), int(window_start[boundary - 1]) + L - before)]])
             self._fold(joined, window_start[:boundary] - (before - (L - 1)), window_start[:boundary], out[:boundary])
+            _fft_rows(out[:boundary])
         if boundary < len(frame_numbers):
-            self._fold(x, window_start[boundary:] - before, window_start[boundary:], out[boundary:])
+            starts, absolute, rest = window_start[boundary:] - before, window_start[boundary:], out[boundary:]
+
+            def fold_and_transform(a: int, b: int) -> None:      # one thread's share of the frames
+                self._fold(x, starts[a:b], absolute[a:b], rest[a:b])
+                _fft_rows(rest[a:b])
+            self._shares.run(len(rest), L, fold_and_transform)
         if L > 1:
             keep = min(len(x), L - 1)
             self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
                 else x[len(x) - keep:].copy()
-        if len(out):
-            import scipy.fft  # here rather than at the top: checking a flow need not load it
-            out = scipy.fft.fft(out, axis=1, overwrite_x=True, workers=1)
         return out.astype(np.complex64, copy=False)
 
     def skip(self, count: int) -> np.ndarray:
@@ -235,6 +311,8 @@ class SynthesisBank:
         Real synthesis taps g; any scale is folded into them.
     kernel : {"fast", "reference"}, keyword-only
         The numba kernel (complex64 arithmetic) or the plain numpy one (float64).
+    threads : int, keyword-only
+        Threads that share each chunk's output samples and FFTs (1 to 64; output identical to one thread).
 
     Notes
     -----
@@ -257,10 +335,12 @@ class SynthesisBank:
     True
     """
 
-    def __init__(self, channels: int, interpolation: int, taps: np.ndarray, *, kernel: str = "fast") -> None:
+    def __init__(self, channels: int, interpolation: int, taps: np.ndarray, *, kernel: str = "fast",
+                 threads: int = 1) -> None:
         self._channels, self._interpolation = _check_geometry(channels, interpolation, "interpolation")
         self._taps = _check_taps(taps)
         self._kernel_name = _check_kernel(kernel)
+        self._shares = _Shares(_check_threads(threads))
         self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
         self._prepared = self._kernel.prepare_spread_taps(self._taps)
@@ -270,11 +350,12 @@ class SynthesisBank:
     interpolation = property(lambda self: self._interpolation, doc="Interpolation D (output samples per frame).")
     taps = property(lambda self: self._taps, doc="Synthesis taps g (read-only float64 array).")
     kernel = property(lambda self: self._kernel_name, doc="'fast' (numba) or 'reference' (numpy).")
+    threads = property(lambda self: self._shares.threads, doc="Threads sharing each chunk's work.")
     frames_consumed = property(lambda self: self._frames, doc="Frames taken so far.")
 
     def __repr__(self) -> str:
         return (f"SynthesisBank(channels={self._channels}, interpolation={self._interpolation}, "
-                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r})")
+                f"taps=<{len(self._taps)} taps>, kernel={self._kernel_name!r}, threads={self.threads})")
 
     def reset(self) -> None:
         """Forget all frames: the next frame given is frame 0 again."""
@@ -290,13 +371,14 @@ class SynthesisBank:
         count = len(frames)
         if count == 0:
             return np.zeros(0, dtype=np.complex64)
-        import scipy.fft
-        periodic = scipy.fft.ifft(frames.astype(self._work_dtype, copy=False), axis=1,
-                                  norm="forward", workers=1)
-        periodic = np.ascontiguousarray(periodic, dtype=self._work_dtype)
+        periodic: np.ndarray = np.array(frames, dtype=self._work_dtype, order="C")    # transformed in place below
+        self._shares.run(count, M, lambda a, b: _fft_rows(periodic[a:b], inverse=True))
         out: np.ndarray = np.zeros(count * D + L, dtype=self._work_dtype)
         out[:L] = self._pending
-        self._kernel.spread_frames(periodic, self._prepared, D, M, (self._frames * D) % M, out)
+        phase = (self._frames * D) % M
+        # each thread its own range of output samples, summed over the frames in order as in one call
+        self._shares.run(len(out), max(1, L // D),
+                         lambda a, b: self._kernel.spread_frames(periodic, self._prepared, D, M, phase, out, a, b))
         self._frames += count
         self._pending = out[count * D:].copy()
         return out[:count * D].astype(np.complex64, copy=False)

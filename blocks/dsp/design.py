@@ -142,11 +142,11 @@ class BankDesign:
         """Relative RMS round-trip error for white input, dB (float64 arithmetic)."""
         return self.round_trip.error_db
 
-    def analysis_bank(self, *, kernel: str = "fast") -> AnalysisBank:
-        return AnalysisBank(self.channels, self.decimation, self.analysis_taps, kernel=kernel)
+    def analysis_bank(self, *, kernel: str = "fast", threads: int = 1) -> AnalysisBank:
+        return AnalysisBank(self.channels, self.decimation, self.analysis_taps, kernel=kernel, threads=threads)
 
-    def synthesis_bank(self, *, kernel: str = "fast") -> SynthesisBank:
-        return SynthesisBank(self.channels, self.decimation, self.synthesis_taps, kernel=kernel)
+    def synthesis_bank(self, *, kernel: str = "fast", threads: int = 1) -> SynthesisBank:
+        return SynthesisBank(self.channels, self.decimation, self.synthesis_taps, kernel=kernel, threads=threads)
 
     def figures(self) -> dict[str, Any]:
         """All figures as a flat dict of plain numbers and strings (for tables and JSON)."""
