@@ -15,16 +15,17 @@ from bandloom.blocks.block import REQUIRED, Param, toml_repr
 from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
+from .cli import Interrupted
 from .flow import Flow, FlowErrors, format_key_path, load_flow
 from .flow.declarations import BLOCK_OPTIONS
 from .flow.overrides import parse_override
-from .launcher import Launcher
+from .launcher import Launcher, take_launcher
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
 from .supervisor import DRAIN_SECONDS, RunOutcome, Supervisor
 
-__all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "Interrupted", "blocks_markdown", "run_blocks", "run_check", "run_keys",
+__all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "blocks_markdown", "run_blocks", "run_check", "run_keys",
            "run_run"]
 
 
@@ -34,15 +35,6 @@ __all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "Interrupted", "blocks_markdow
 EXIT_OK = 0             # finished; nothing lost, or only loss the flow or the command line accepted
 EXIT_FAILED = 1         # a block failed or died, or the flow has problems
 EXIT_LOST = 3           # finished, but samples were lost and nothing accepted that
-
-
-class Interrupted(Exception):
-    """The run was stopped by ``signum`` (Ctrl-C's SIGINT, or SIGTERM) after a clean shutdown; the command
-    then ends killed by that same signal, as a Unix program should."""
-
-    def __init__(self, signum: int = signal.SIGINT) -> None:
-        super().__init__(signal.Signals(signum).name)
-        self.signum = signum
 
 
 def _registry(log: TextIO) -> Registry:
@@ -129,7 +121,7 @@ def _drain_time(text: str) -> float:
 
 def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
-    with Launcher() as launcher:        # imports what workers need while the flow is checked
+    with take_launcher(args.flow) as launcher:     # imports what workers need while the flow is checked
         flow = _load(args, log)
         if flow is None:
             return 1

@@ -44,7 +44,7 @@ import sys
 import time
 from types import TracebackType
 
-__all__ = ["LaunchError", "LaunchedProcess", "Launcher", "main"]
+__all__ = ["LaunchError", "LaunchedProcess", "Launcher", "main", "start_early", "take_launcher"]
 
 REPLY_SECONDS = 60.0          # the longest a preload (imports, kernels) or a fork may take to answer
 
@@ -84,13 +84,17 @@ class LaunchedProcess:
 
 
 class Launcher:
-    """The supervisor's end of the launcher process (see the module doc); a context manager."""
+    """The supervisor's end of the launcher process (see the module doc); a context manager.
 
-    def __init__(self) -> None:
+    ``flow_hint`` is the flow file the run is about, if known: the launcher reads the block types it names
+    (no more than that: nothing is checked there) and preloads them at once, before it is asked to."""
+
+    def __init__(self, flow_hint: str | None = None) -> None:
         ours, theirs = socket.socketpair()
         self.sock = ours
-        self.process = subprocess.Popen([sys.executable, "-m", "bandloom.runtime.launcher", str(theirs.fileno())],
-                                        pass_fds=(theirs.fileno(),), stdin=None, stdout=None)
+        hint = [flow_hint] if flow_hint and not any(c.isspace() for c in flow_hint) else []
+        self.process = subprocess.Popen([sys.executable, "-m", "bandloom.runtime.launcher", str(theirs.fileno()),
+                                         *hint], pass_fds=(theirs.fileno(),), stdin=None, stdout=None)
         theirs.close()
         self.buffer = b""
         self.children: dict[int, LaunchedProcess] = {}
@@ -183,14 +187,43 @@ class Launcher:
         return child
 
 
+_EARLY: list[Launcher] = []
+
+
+def start_early(flow_hint: str | None) -> None:
+    """Start this command's launcher now, before the command's own imports (``bandloom run``)."""
+    if not _EARLY:
+        _EARLY.append(Launcher(flow_hint))
+
+
+def take_launcher(flow_hint: str | None = None) -> Launcher:
+    """The launcher started early for this command, or a new one."""
+    return _EARLY.pop() if _EARLY else Launcher(flow_hint)
+
+
 # -- the launcher process ---------------------------------------------------------------------------
-def _preload(type_names: list[str]) -> str:
+def _types_in(flow_hint: str) -> list[str]:
+    """The block types a flow file names (read as TOML; anything unreadable gives none)."""
+    import tomllib
+    try:
+        with open(flow_hint, "rb") as handle:
+            blocks = tomllib.loads(handle.read(1 << 20).decode()).get("blocks", {})
+    except (OSError, ValueError, UnicodeDecodeError):
+        return []
+    if not isinstance(blocks, dict):
+        return []
+    return sorted({b["type"] for b in blocks.values() if isinstance(b, dict) and isinstance(b.get("type"), str)})
+
+
+def _preload(type_names: list[str], *, quietly: bool = False) -> str:
     from .plugins import load_registry
 
     registry = load_registry()
     for name in type_names:
         cls = registry.types.get(name)
         if cls is None:
+            if quietly:
+                continue
             return f"block type {name!r} is not installed here"
         cls.preload()
     return "ready"
@@ -231,6 +264,11 @@ def main(argv: list[str] | None = None) -> int:
     from . import worker  # noqa: F401
     from ._memory import reuse_chunk_buffers
     reuse_chunk_buffers()
+    if len(args) > 1:                      # the flow's own block types, before the supervisor asks
+        try:
+            _preload(_types_in(args[1]), quietly=True)
+        except Exception:  # a guess only: the supervisor's own preload reports any real failure
+            pass
     selector = selectors.DefaultSelector()
     selector.register(sock, selectors.EVENT_READ)
     buffer = b""

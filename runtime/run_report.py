@@ -121,6 +121,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
                         "incidents": list(r.incidents),
                         "samples_in": totals.rows_in if totals else 0, "samples_out": totals.rows_out if totals else 0,
                         # for 'bandloom bench --flow' (CLOCK_MONOTONIC seconds, one clock for the whole machine)
+                        "started_clock": totals.started_clock if totals else None,
                         "busy_seconds": totals.busy_seconds if totals else 0.0,
                         "first_samples_clock": totals.first_rows_clock if totals else None,
                         "last_report_clock": totals.started_clock + totals.time if totals else None}
