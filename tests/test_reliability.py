@@ -1,7 +1,9 @@
 """No silent loss: faults injected with real processes, files and sockets, and the accounting checked afterwards."""
 
 import json
+import os
 import re
+import signal
 import socket
 import subprocess
 import sys
@@ -15,7 +17,7 @@ from bandloom.runtime.flow import check_flow
 from bandloom.runtime.plugins import load_registry
 from bandloom.runtime.run_report import summarise, verdict
 from bandloom.runtime.supervisor import BlockRecord
-from runner import bandloom
+from runner import bandloom, worker_processes
 
 REGISTRY = load_registry()
 
@@ -150,3 +152,39 @@ def test_the_verdict_counts_every_loss_once_and_says_what_was_accepted(tmp_path)
                                 "5 block live: unusable datagrams")
     accepted = summarise(flow, {"live": live, "sink": sink}, outcome="interrupted", seconds=1.0, accept_loss=True)
     assert accepted["lost_samples_not_accepted"] == 0 and verdict(accepted).endswith("— accepted (accept_loss)")
+
+
+def test_rows_waiting_in_a_batch_when_a_run_is_aborted_are_counted_lost(tmp_path):
+    """A link with latency = 10 s sends only full batches (256 KiB) and holds the rest in the sender; kill -9
+    of another consumer stops the run: the held rows are named in the verdict ("waiting in split's batch"), and for every link what its
+    sender was given adds up: the channelizer's frames = sent + held, and sent = received + in flight."""
+    flow = tmp_path / "held.toml"
+    flow.write_text('[blocks.band]\ntype = "scenario"\nsample_rate = 200000\nduration = 20\nchunk_size = 2000\n'
+                    'pace = true\n'
+                    '[blocks.split]\ntype = "channelizer"\nchannels = 4\n'
+                    '[blocks.slow]\ntype = "discard"\n[blocks.victim]\ntype = "discard"\n'
+                    '[[links]]\nfrom = "band.samples"\nto = "split.samples"\n'
+                    '[[links]]\nfrom = "split.channels"\nselect = 1\nto = "slow.samples"\nlatency = "10 s"\n'
+                    '[[links]]\nfrom = "split.channels"\nselect = 2\nto = "victim.samples"\nlatency = 0\n')
+    report_path = tmp_path / "report.json"
+    run = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet", "--out",
+                            str(tmp_path), "--report", str(report_path)], stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    victim = []
+    while not victim and time.monotonic() < deadline:
+        time.sleep(0.2)
+        victim = [pid for pid, (name, _) in worker_processes(below=run.pid).items() if name == "victim"]
+    time.sleep(1.5)               # 100,000 frames/s fill a batch (32768 rows) about three times a second
+    os.kill(victim[0], signal.SIGKILL)
+    stderr = run.communicate(timeout=60)[1]
+    report = json.loads(report_path.read_text())
+    assert run.returncode == 1, stderr
+    held = {x["link"]: x for x in report["links"]}["split.channels[1] -> slow.samples"]
+    assert 0 < held["held_samples"] < 32768 and held["sent_samples"] % 32768 == 0
+    assert any(x["samples"] == held["held_samples"] and "waiting in split's batch" in x["why"]
+               for x in report["losses"])
+    frames = report["blocks"]["split"]["samples_out"]
+    for x in report["links"][1:]:
+        assert frames == x["sent_samples"] + x["held_samples"] + x["dropped_samples"], x
+    for x in report["links"]:
+        assert x["sent_samples"] == x["received_samples"] + x["in_flight_samples"], x
