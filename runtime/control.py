@@ -211,6 +211,7 @@ class StatsMessage:
     started_clock: float = 0.0                 # when the worker process began
     first_rows_clock: float | None = None      # when its block first took (or, a source, made) rows
     busy_seconds: float = 0.0                  # spent inside the block's own code (produce, consume, finish)
+    cpu_seconds: float = 0.0                   # CPU time of the whole process, every thread, user and system
 
     def then(self, later: StatsMessage) -> StatsMessage:
         """This instance's last statistics followed by those of the instance that took its place:
@@ -220,6 +221,7 @@ class StatsMessage:
 
         return replace(later, rows_in=self.rows_in + later.rows_in, rows_out=self.rows_out + later.rows_out,
                        losses=self.losses + later.losses, busy_seconds=self.busy_seconds + later.busy_seconds,
+                       cpu_seconds=self.cpu_seconds + later.cpu_seconds,
                        first_rows_clock=self.first_rows_clock or later.first_rows_clock, inputs=combined(self.inputs, later.inputs),
                        outputs=combined(self.outputs, later.outputs))
 

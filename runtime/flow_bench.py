@@ -15,7 +15,9 @@ Method (docs/performance.md):
   block is run here too, untimed, and only the channelizer block's own work on
   each chunk is timed; the fastest of ``runs`` passes counts. The ratio is the flow's steady input rate over that in-process rate.
 * Per block, its *busy* fraction: time inside its own code (produce, consume,
-  finish) over the time from its first samples to its end; per link, the
+  finish) over the time from its first samples to its end, and its process's
+  CPU time (every thread, user and system) per input sample, from the long run's
+  extra CPU over its extra samples; per link, the
   bytes it carried and the bytes its sender copied (to gather channels or
   change their type), per input sample of the flow. Each byte on a local
   (ipc) link is also copied twice by the kernel, once into the socket and
@@ -27,6 +29,7 @@ Ratios compare between machines; seconds do not. No test asserts on them.
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -183,8 +186,10 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
     blocks = []
     for name, b in long.summary["blocks"].items():
         active = (b["last_report_clock"] or 0) - (b["first_samples_clock"] or 0)
+        cpu = b["cpu_seconds"] - short.summary["blocks"][name]["cpu_seconds"]
         blocks.append({"block": name, "busy_seconds": b["busy_seconds"],
-                       "busy_fraction": b["busy_seconds"] / active if active > 0 else None})
+                       "busy_fraction": b["busy_seconds"] / active if active > 0 else None,
+                       "cpu_ns_per_input_sample": cpu / extra * 1e9})
     links = []
     for link, counted in zip(flow.links, long.summary["links"]):
         row_bytes = link.stream.width * link.stream.dtype.itemsize
@@ -210,9 +215,12 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
     for name, entry in result["in_process"].items():
         out.write(f"in-process {name} on the same data: {engineering(entry['rate'], 'sps')}; "
                   f"flow / in-process = {entry['ratio']:.2f}\n")
-    out.write("\n" + render_rows(["block", "busy s", "busy fraction"], [
-        [b["block"], round(b["busy_seconds"], 2), "-" if b["busy_fraction"] is None else round(b["busy_fraction"], 2)]
-        for b in blocks]) + "\n\n")
+    cpu_total = sum(b["cpu_ns_per_input_sample"] for b in blocks)
+    out.write("\n" + render_rows(["block", "busy s", "busy fraction", "CPU ns / input sample"], [
+        [b["block"], round(b["busy_seconds"], 2), "-" if b["busy_fraction"] is None else round(b["busy_fraction"], 2),
+         round(b["cpu_ns_per_input_sample"], 1)] for b in blocks] + [["(all)", "", "", round(cpu_total, 1)]]) + "\n")
+    out.write(f"{len(os.sched_getaffinity(0))} cores give {engineering(len(os.sched_getaffinity(0)) * 1e9 / cpu_total, 'sps')} "
+              f"at {cpu_total:.1f} ns of CPU per input sample, if nothing else waited.\n\n")
     out.write(render_rows(["link", "messages", "bytes / input sample", "copied bytes / input sample"], [
         [x["link"], x["messages"], round(x["bytes_per_input_sample"], 2), round(x["copied_bytes_per_input_sample"], 2)]
         for x in links]) + "\n")

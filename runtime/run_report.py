@@ -123,6 +123,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
                         # for 'bandloom bench --flow' (CLOCK_MONOTONIC seconds, one clock for the whole machine)
                         "started_clock": totals.started_clock if totals else None,
                         "busy_seconds": totals.busy_seconds if totals else 0.0,
+                        "cpu_seconds": totals.cpu_seconds if totals else 0.0,
                         "first_samples_clock": totals.first_rows_clock if totals else None,
                         "last_report_clock": totals.started_clock + totals.time if totals else None}
     lost = sum(x["samples"] for x in losses)

@@ -138,7 +138,7 @@ class Worker:
             progress=(int(progress[0]), int(progress[1])) if progress else None,
             report=report or [], losses=list(self.block.losses()) if self.block is not None else [],
             message=message, started_clock=self.started, first_rows_clock=self.first_rows_clock,
-            busy_seconds=round(self.busy_seconds, 6))
+            busy_seconds=round(self.busy_seconds, 6), cpu_seconds=round(time.process_time(), 6))
         self.stats_socket.send(stats.encode())
         self.last_stats = time.monotonic()
 

@@ -52,6 +52,8 @@ def test_bench_flow_measures_both_lengths_and_what_each_link_carries(tmp_path):
     assert links["split.channels -> sink.samples"]["copied_bytes_per_input_sample"] == tail_frames * 16 * 8 / 16e6
     busy = {b["block"]: b["busy_fraction"] for b in result["blocks"]}
     assert 0 < busy["split"] <= 1.0
+    cpu = {b["block"]: b["cpu_ns_per_input_sample"] for b in result["blocks"]}
+    assert cpu["split"] > 0 and cpu["band"] > 0
 
 
 def test_bench_flow_refuses_a_source_whose_length_it_cannot_set(tmp_path):

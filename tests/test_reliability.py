@@ -156,8 +156,8 @@ def test_the_verdict_counts_every_loss_once_and_says_what_was_accepted(tmp_path)
 
 def test_rows_waiting_in_a_batch_when_a_run_is_aborted_are_counted_lost(tmp_path):
     """A link with latency = 10 s sends only full batches (256 KiB) and holds the rest in the sender; kill -9
-    of another consumer stops the run: the held rows are named in the verdict ("waiting in split's batch"), and for every link what its
-    sender was given adds up: the channelizer's frames = sent + held, and sent = received + in flight."""
+    of another consumer stops the run: the held rows are named in the verdict ("waiting in split's batch"),
+    and every link adds up: the channelizer's frames = sent + held, and sent = received + in flight."""
     flow = tmp_path / "held.toml"
     flow.write_text('[blocks.band]\ntype = "scenario"\nsample_rate = 200000\nduration = 20\nchunk_size = 2000\n'
                     'pace = true\n'
