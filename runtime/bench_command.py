@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import json
 import time
-from argparse import ArgumentParser, Namespace
+from argparse import ArgumentParser, ArgumentTypeError, Namespace
 from collections.abc import Callable
 from typing import Any, TextIO
 
@@ -24,6 +24,18 @@ from bandloom.blocks.text_tables import render_rows
 from ._memory import reuse_chunk_buffers
 
 __all__ = ["add_arguments", "measure_case", "run"]
+
+
+def _whole_number(low: int, high: int) -> Callable[[str], int]:
+    def convert(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            value = low - 1
+        if not low <= value <= high:
+            raise ArgumentTypeError(f"{text!r} is not a whole number from {low} to {high}")
+        return value
+    return convert
 
 
 def _int_list(text: str) -> list[int]:
@@ -37,7 +49,7 @@ def add_arguments(parser: ArgumentParser) -> None:
     parser.add_argument("--samples", type=int, default=1 << 21, help="input samples per case")
     parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
     parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
-    parser.add_argument("--threads", type=int, default=1, help="also time both banks with this many threads "
+    parser.add_argument("--threads", type=_whole_number(1, 64), default=1, help="also time both banks with this many threads "
                         "against one (they pay off with --chunk 262144 or more)")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
     flows = parser.add_argument_group("a whole flow (docs/performance.md)")
@@ -45,10 +57,10 @@ def add_arguments(parser: ArgumentParser) -> None:
                        "ratio to its channelizer in process, busy fraction per block, bytes per link")
     flows.add_argument("--set", action="append", default=[], metavar="BLOCK.KEY=VALUE",
                        help="with --flow: override a block parameter, as for 'bandloom run'")
-    flows.add_argument("--lengthen", type=int, default=4, help="with --flow: the long run is this many times the "
-                       "short one (default 4)")
-    flows.add_argument("--runs", type=int, default=2, help="with --flow: runs of each length, the fastest counts "
-                       "(default 2)")
+    flows.add_argument("--lengthen", type=_whole_number(2, 1000), default=4, help="with --flow: the long run is "
+                       "this many times the short one (2 to 1000; default 4)")
+    flows.add_argument("--runs", type=_whole_number(1, 20), default=2, help="with --flow: runs of each length, the "
+                       "fastest counts (1 to 20; default 2)")
 
 
 def _best(function: Callable[[], object], repeats: int) -> float:

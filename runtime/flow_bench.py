@@ -47,9 +47,13 @@ from .flow import Flow, FlowErrors, Instance, load_flow
 from .flow.overrides import parse_override
 from .plugins import load_registry
 
-__all__ = ["FlowRun", "measure_flow", "run_flow_bench"]
+__all__ = ["FlowRun", "FlowRunFailed", "measure_flow", "run_flow_bench"]
 
 CHANNELIZER = "channelizer"
+
+
+class FlowRunFailed(RuntimeError):
+    """A run of the flow being measured failed or lost samples; the message has the end of its stderr."""
 
 
 @dataclass(frozen=True)
@@ -121,7 +125,7 @@ def in_process_rate(flow: Flow, channelizer: Instance, out_dir: Path) -> float:
 
 
 def measure_flow(flow: Flow, sets: list[str], *, out_dir: Path) -> FlowRun:
-    """Run the flow once as ``bandloom run`` in a process of its own; raise RuntimeError if it fails."""
+    """Run the flow once as ``bandloom run`` in a process of its own; raise FlowRunFailed if it fails."""
     report = out_dir / "report.json"
     command = [sys.executable, "-m", "bandloom", "run", str(flow.path), "--quiet", "--out", str(out_dir),
                "--report", str(report)] + [a for s in sets for a in ("--set", s)]
@@ -131,7 +135,7 @@ def measure_flow(flow: Flow, sets: list[str], *, out_dir: Path) -> FlowRun:
     seconds = time.monotonic() - began
     if done.returncode != 0:
         tail = "\n".join(done.stderr.strip().splitlines()[-5:])
-        raise RuntimeError(f"the flow did not run cleanly (exit status {done.returncode}):\n{tail}")
+        raise FlowRunFailed(f"the flow did not run cleanly (exit status {done.returncode}):\n{tail}")
     summary = json.loads(report.read_text())
     blocks = summary["blocks"]
     input_samples = sum(blocks[inst.name]["samples_out"] for inst in flow.instances.values() if inst.cls.is_source)
@@ -163,10 +167,14 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         for problem in errors.problems:
             print(str(problem), file=sys.stderr)
         return 1
-    if args.lengthen < 2:
-        raise ValueError(f"--lengthen {args.lengthen} must be 2 or more (the long run against the short one)")
-    short = _best(flow, base_sets, args.runs, progress, "short")
-    long = _best(flow, base_sets + _length_overrides(flow, args.lengthen), args.runs, progress, "long")
+    try:
+        short = _best(flow, base_sets, args.runs, progress, "short")
+        long = _best(flow, base_sets + _length_overrides(flow, args.lengthen), args.runs, progress, "long")
+    except FlowRunFailed as failure:
+        if progress:
+            progress("")
+        print(f"bandloom bench: {failure}", file=sys.stderr)
+        return 1
     extra = long.input_samples - short.input_samples
     if long.seconds <= short.seconds:
         raise ValueError(f"the long run took {long.seconds:.2f} s, no longer than the short one ({short.seconds:.2f} s): "

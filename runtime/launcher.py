@@ -205,6 +205,8 @@ def take_launcher(flow_hint: str | None = None) -> Launcher:
 def _types_in(flow_hint: str) -> list[str]:
     """The block types a flow file names (read as TOML; anything unreadable gives none)."""
     import tomllib
+    if not os.path.isfile(flow_hint):      # a pipe or a device could block the launcher
+        return []
     try:
         with open(flow_hint, "rb") as handle:
             blocks = tomllib.loads(handle.read(1 << 20).decode()).get("blocks", {})

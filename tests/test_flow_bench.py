@@ -1,6 +1,7 @@
 """bandloom bench --flow: a real flow run at two lengths, its figures held to what the flow must move."""
 
 import json
+import socket
 
 from runner import bandloom
 
@@ -65,3 +66,18 @@ def test_bench_flow_refuses_a_source_whose_length_it_cannot_set(tmp_path):
     assert done.returncode == 2
     assert "block 'rx' (stdin-reader) has no parameter that sets its length" in done.stderr
     assert "Traceback" not in done.stderr
+
+
+def test_bench_flow_says_so_when_the_flow_fails(tmp_path):
+    """A flow that fails when run (its endpoint's port is taken by another program) is reported with the end
+    of its own error output and exit 1, not a traceback."""
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        flow = tmp_path / "failing.toml"
+        flow.write_text('[blocks.band]\ntype = "scenario"\nsample_rate = 1000\nduration = 1\n'
+                        f'[[links]]\nfrom = "band.samples"\nendpoint = "tcp://127.0.0.1:{taken.getsockname()[1]}"\n')
+        done = bandloom("bench", "--flow", flow, "--runs", "1")
+    assert done.returncode == 1, done.stderr
+    assert "bandloom bench: the flow did not run cleanly (exit status 1)" in done.stderr
+    assert "Address already in use" in done.stderr and "Traceback" not in done.stderr
