@@ -41,6 +41,7 @@ __all__ = ["BlockRecord", "DRAIN_SECONDS", "RunOutcome", "Supervisor"]
 DRAIN_SECONDS = 10.0
 ABORT_SECONDS = 5.0
 DISPLAY_INTERVAL = 0.5
+REPEAT_SECONDS = 0.1           # a control word that holds is said again this often (PUB may miss a late subscriber)
 
 
 class RunOutcome(str, Enum):
@@ -150,6 +151,7 @@ class Supervisor:
         self.folder = ""
         self.workers_started = 0
         self.stop_signal = 0          # SIGINT or SIGTERM, once one asked the run to stop
+        self.last_said: dict[bytes, float] = {}      # control message -> when it was last said (see tell)
 
     def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
         """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
@@ -261,24 +263,32 @@ class Supervisor:
             if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()):
                 self.barrier_passed = True          # every worker has said hello: its links are open
             if self.barrier_passed and aborting_since is None and not self.failed:
-                control.send(Control(ControlWord.GO).encode())
+                self.tell(control, now, Control(ControlWord.GO).encode())
             for name in self.releasable():
-                control.send(Control(ControlWord.RELEASE, name).encode())
+                self.tell(control, now, Control(ControlWord.RELEASE, name).encode())
             for record in self.blocks.values():
                 if record.down:
-                    control.send(Control(ControlWord.DETACH, record.name).encode())
+                    self.tell(control, now, Control(ControlWord.DETACH, record.name).encode())
                 elif record.restarts:
-                    control.send(Control(ControlWord.ATTACH, record.name).encode())
+                    self.tell(control, now, Control(ControlWord.ATTACH, record.name).encode())
             if aborting_since is not None:
-                control.send(Control(ControlWord.ABORT).encode())
+                self.tell(control, now, Control(ControlWord.ABORT).encode())
                 if now - aborting_since > ABORT_SECONDS:
                     for record in running:
                         record.process.kill()
             elif stopping_since is not None:
-                control.send(Control(ControlWord.STOP).encode())
+                self.tell(control, now, Control(ControlWord.STOP).encode())
             if self.display and now - last_display >= DISPLAY_INTERVAL:
                 self.display.show(self.flow, self.blocks)
                 last_display = now
+
+    def tell(self, control: zmq.Socket, now: float, message: bytes) -> None:
+        """Say ``message`` to the workers now if it is new, else at most every REPEAT_SECONDS: each one wakes
+        every worker, and the loop turns at the rate statistics arrive (a 66-process flow: about a hundred
+        times a second)."""
+        if now - self.last_said.get(message, -REPEAT_SECONDS) >= REPEAT_SECONDS:
+            control.send(message)
+            self.last_said[message] = now
 
     def block_failed(self, record: BlockRecord, now: float, *, aborting: bool) -> None:
         """A block's process failed or died: restart it, leave it down, or stop the run (its on_failure)."""
