@@ -42,15 +42,28 @@ import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 from types import TracebackType
 
-__all__ = ["LaunchError", "LaunchedProcess", "Launcher", "main", "start_early", "take_launcher"]
+__all__ = ["EXIT_UNKNOWN", "LaunchError", "LaunchedProcess", "Launcher", "main", "start_early", "take_launcher"]
 
+EXIT_UNKNOWN = 255            # the return code of a worker whose launcher died before it could say how it ended
 REPLY_SECONDS = 60.0          # the longest a preload (imports, kernels) or a fork may take to answer
 
 
 class LaunchError(ChildProcessError):
     """The launcher could not start a worker, or is gone; the message says which and why."""
+
+
+def _running(pid: int) -> bool:
+    """Whether process ``pid`` exists and is not a zombie (an orphan whose new parent has not reaped it)."""
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    except IndexError:
+        return True
+    return state != "Z"
 
 
 class LaunchedProcess:
@@ -76,7 +89,7 @@ class LaunchedProcess:
         return self.returncode
 
     def kill(self) -> None:
-        if self.returncode is None:
+        if self.poll() is None:            # not known to have ended (its PID is not yet free for reuse)
             try:
                 os.kill(self.pid, signal.SIGKILL)
             except ProcessLookupError:
@@ -142,18 +155,24 @@ class Launcher:
         return [line.decode() for line in lines]
 
     def read_notices(self, wait: float = 0.0) -> None:
-        """Take what the launcher said: children that ended get their return codes; replies are kept."""
+        """Take what the launcher said: children that ended get their return codes; replies are kept. If
+        the launcher itself is gone, nobody will say how its children end: each one that no longer exists
+        gets :data:`EXIT_UNKNOWN`."""
         try:
             lines = self._lines(wait)
         except LaunchError:
             lines = []
+            for pid, orphan in list(self.children.items()):
+                if not _running(pid):
+                    orphan.returncode = EXIT_UNKNOWN
+                    del self.children[pid]
         for line in lines:
             word, _, rest = line.partition(" ")
             if word == "exit":
                 pid, code = (int(v) for v in rest.split())
-                child = self.children.pop(pid, None)
-                if child is not None:
-                    child.returncode = code
+                ended = self.children.pop(pid, None)
+                if ended is not None:
+                    ended.returncode = code
             else:
                 self.replies.append(line)
 

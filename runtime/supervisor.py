@@ -152,6 +152,7 @@ class Supervisor:
         self.workers_started = 0
         self.stop_signal = 0          # SIGINT or SIGTERM, once one asked the run to stop
         self.last_said: dict[bytes, float] = {}      # control message -> when it was last said (see tell)
+        self.launcher_lost = ""       # why the run stopped when the worker launcher died under it
 
     def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
         """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
@@ -233,6 +234,12 @@ class Supervisor:
                     break
                 self.absorb(stats.recv())
             now = time.monotonic()
+            if not self.launcher_lost and self.launcher is not None and self.launcher.process.poll() is not None:
+                # its workers see their parent gone and abort themselves: the run cannot go on
+                self.launcher_lost = (f"the worker launcher (pid {self.launcher.process.pid}) died "
+                                      f"({describe_exit(self.launcher.process.returncode)}); its workers stopped")
+                self.say(self.launcher_lost)
+                aborting_since = aborting_since or now
             for record in self.blocks.values():
                 code = record.process.poll()
                 if code is not None and record.state not in TERMINAL_STATES | {BlockState.RESTARTING}:
@@ -353,7 +360,7 @@ class Supervisor:
 
     # -- outcome -------------------------------------------------------------------------------
     def outcome(self) -> RunOutcome:
-        if self.failed or any(r.left_down for r in self.blocks.values()):
+        if self.failed or self.launcher_lost or any(r.left_down for r in self.blocks.values()):
             return RunOutcome.FAILED
         return RunOutcome.INTERRUPTED if self.interrupted else RunOutcome.FINISHED
 
@@ -371,4 +378,5 @@ class Supervisor:
     def failures(self) -> list[str]:
         """One line per failure: those the run survived (restarted, or left down), then those that stopped it."""
         lines = [line for record in self.blocks.values() for line in record.incidents]
+        lines += [self.launcher_lost] if self.launcher_lost else []
         return lines + [self.failure_line(self.blocks[name]) for name in self.failed]

@@ -87,3 +87,28 @@ def test_a_flow_runs_the_same_beside_two_busy_processes(tmp_path, busy_machine):
         assert link["sent_samples"] == link["received_samples"] and link["held_samples"] == 0
     assert report["blocks"]["band"]["samples_out"] == 2_000_000
     assert all(report["blocks"][f"sink[{k}]"]["samples_in"] == 2_000_000 * 2 // 8 for k in range(8))
+
+
+def test_a_killed_launcher_fails_the_run_with_every_worker_accounted_for(tmp_path):
+    """kill -9 of the launcher mid-run: its workers see their parent gone and abort; the supervisor notices,
+    says so, learns that the workers ended although nobody can say how, and fails the run (exit 1) within
+    seconds; no worker is left behind."""
+    flow = tmp_path / "orphans.toml"
+    flow.write_text('[blocks.band]\ntype = "scenario"\nsample_rate = 100000\nduration = 60\npace = true\n'
+                    '[blocks.sink]\ntype = "discard"\n[[links]]\nfrom = "band.samples"\nto = "sink.samples"\n')
+    command = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet", "--out",
+                                str(tmp_path)], stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    workers = {}
+    while len(workers) < 2 and time.monotonic() < deadline:
+        time.sleep(0.2)
+        workers = worker_processes(below=command.pid)
+    launcher = int(Path(f"/proc/{next(iter(workers))}/stat").read_text().rsplit(")", 1)[1].split()[1])
+    time.sleep(0.5)
+    os.kill(launcher, signal.SIGKILL)
+    killed = time.monotonic()
+    stderr = command.communicate(timeout=60)[1]
+    assert command.returncode == 1, stderr
+    assert time.monotonic() - killed < 15
+    assert f"the worker launcher (pid {launcher}) died (killed by SIGKILL); its workers stopped" in stderr
+    assert not worker_processes(below=command.pid)
