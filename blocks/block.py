@@ -41,7 +41,7 @@ from .params import REQUIRED, Param, toml_repr
 from .sample_formats import STREAM_TYPES
 
 __all__ = ["Block", "BlockContext", "BlockError", "Chunk", "Loss", "Output", "Param", "Pacer", "Port", "REQUIRED",
-           "SAMPLE_TYPES", "StreamInfo", "toml_repr"]
+           "SAMPLE_TYPES", "StreamInfo", "chunks_of", "toml_repr"]
 
 SAMPLE_TYPES = STREAM_TYPES
 
@@ -180,6 +180,11 @@ class Loss:
 
 #: What ``produce``, ``consume`` and ``finish`` return: chunks by output port.
 Output = Mapping[str, "list[Chunk] | Chunk"]
+
+
+def chunks_of(value: list[Chunk] | Chunk) -> list[Chunk]:
+    """One port's part of an :data:`Output` as a list (a block may give one chunk or a list)."""
+    return value if isinstance(value, list) else [value]
 
 
 @dataclass(frozen=True)

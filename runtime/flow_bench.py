@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
 
-from bandloom.blocks.block import BlockContext, Chunk, Output
+from bandloom.blocks.block import BlockContext, chunks_of
 from bandloom.blocks.text_tables import engineering, render_rows
 
 from .flow import Flow, FlowErrors, Instance, load_flow
@@ -82,13 +82,6 @@ def _length_overrides(flow: Flow, factor: int) -> list[str]:
     return sets
 
 
-def _chunks(produced: Output | None) -> list[Chunk]:
-    chunks: list[Chunk] = []
-    for value in (produced or {}).values():
-        chunks += value if isinstance(value, list) else [value]
-    return chunks
-
-
 def in_process_rate(flow: Flow, channelizer: Instance, out_dir: Path) -> float:
     """Input samples per second of ``channelizer``'s own work in this process, fed by its source block
     (run here too, untimed) with the same data the flow gives it."""
@@ -110,7 +103,7 @@ def in_process_rate(flow: Flow, channelizer: Instance, out_dir: Path) -> float:
     samples = 0
     try:
         while (produced := producer.produce()) is not None:
-            for chunk in _chunks(produced):
+            for chunk in (c for value in produced.values() for c in chunks_of(value)):
                 samples += chunk.count
                 began = time.perf_counter()
                 bank.consume("samples", chunk)

@@ -16,12 +16,13 @@
   :data:`QUEUE_BYTES` at each end: memory is bounded in bytes whatever
   ``queue`` says.
 * Narrow links batch: rows that would make a message smaller than
-  :data:`BATCH_BYTES` wait in the outlet (``held_rows``, reported and, if the
-  run is aborted, counted as in flight) until the message is that large, its
-  oldest row has waited the link's ``batch_seconds`` (its ``latency`` in the
-  flow file), the stream jumps (a gap), or the stream ends. With
-  ``batch_seconds`` 0 every chunk goes as the block made it. A 64-channel split then sends one message where it sent
-  sixteen, which is most of what a message costs its two processes.
+  :data:`BATCH_BYTES` wait in the outlet (``held_rows``: reported, and counted
+  lost if the run is aborted) until the message is that large, its oldest row
+  has waited the link's ``batch_seconds`` (its ``latency`` in the flow file),
+  the stream jumps (a gap), or the stream ends. With ``batch_seconds`` 0 every
+  chunk goes as the block made it. A 64-channel split then sends one message
+  where it sent sixteen, which is most of what a message costs its two
+  processes.
 * A consumer that is down (restarting, or left down by its ``on_failure``):
   the supervisor says ``detach``; until ``attach``, what the outlet would
   send it is dropped and counted (``down_rows``), never waited for, and an

@@ -37,7 +37,7 @@ from pathlib import Path
 
 import setproctitle
 import zmq
-from bandloom.blocks.block import Block, BlockContext, Output
+from bandloom.blocks.block import Block, BlockContext, Output, chunks_of
 
 from . import wire
 from ._memory import reuse_chunk_buffers
@@ -114,6 +114,7 @@ class Worker:
         return self.abort
 
     def all_outlets(self) -> list[Outlet]:
+        """Every outlet of every output port."""
         return [o for outs in self.outlets.values() for o in outs]
 
     def flush_due_batches(self) -> bool:
@@ -125,7 +126,7 @@ class Worker:
         return holding
 
     def outlets_to(self, consumer: str | None) -> list[Outlet]:
-        return [o for outs in self.outlets.values() for o in outs if consumer and o.spec.consumer == consumer]
+        return [o for o in self.all_outlets() if consumer and o.spec.consumer == consumer]
 
     def send_stats(self, event: WorkerEvent = WorkerEvent.STATS, *, report: list[str] | None = None,
                    message: str = "") -> None:
@@ -134,7 +135,7 @@ class Worker:
             event=event, block=self.name, pid=os.getpid(), time=time.monotonic() - self.started,
             rows_in=self.rows_in, rows_out=self.rows_out,
             inputs={i.id: i.stats() for i in self.inlets},
-            outputs={o.id: o.stats() for outs in self.outlets.values() for o in outs},
+            outputs={o.id: o.stats() for o in self.all_outlets()},
             progress=(int(progress[0]), int(progress[1])) if progress else None,
             report=report or [], losses=list(self.block.losses()) if self.block is not None else [],
             message=message, started_clock=self.started, first_rows_clock=self.first_rows_clock,
@@ -181,7 +182,7 @@ class Worker:
     # -- moving chunks -----------------------------------------------------------------------
     def emit(self, produced: Output | None) -> None:
         for port, chunks in (produced or {}).items():
-            for chunk in chunks if isinstance(chunks, list) else [chunks]:
+            for chunk in chunks_of(chunks):
                 self.rows_out += chunk.count
                 outlets = self.outlets.get(port, [])
                 for outlet, picked in zip(outlets, column_major(chunk, outlets)):
@@ -258,8 +259,7 @@ class Worker:
 
     def wait_for_release(self) -> None:
         """Keep the links open until the consumers have read everything (see the module doc)."""
-        if not any(o.spec.endpoint.startswith("ipc://") and not o.spec.bind
-                   for outs in self.outlets.values() for o in outs):
+        if not any(o.spec.endpoint.startswith("ipc://") and not o.spec.bind for o in self.all_outlets()):
             return
         self.send_stats(WorkerEvent.ENDING)
         while not self.released and not self.poll_control():
@@ -290,9 +290,8 @@ class Worker:
             pass
         for inlet in self.inlets:
             inlet.close()
-        for outs in self.outlets.values():
-            for outlet in outs:
-                outlet.close(discard=event is not WorkerEvent.DONE)
+        for outlet in self.all_outlets():
+            outlet.close(discard=event is not WorkerEvent.DONE)
         self.control.close()
         # the last statistics may wait a while for a busy supervisor, but not for one that is gone
         self.stats_socket.close(linger=0 if self.parent_gone else 5000)
