@@ -68,8 +68,7 @@ class EndpointOutlet(Outlet):
         self.resent_messages = 0
         self.refused = 0
         self.bad_requests = 0
-        super().__init__(context, spec, should_abort)
-        self.batch_rows = 1        # an outside program gets each chunk as the block made it: no batching
+        super().__init__(context, spec, should_abort)     # batches only for a block on another host (latency)
 
     def _open(self, context: zmq.Context, spec: LinkSpec) -> None:
         keys = spec.keys

@@ -23,7 +23,8 @@ from .launcher import Launcher, take_launcher
 from .metrics import MetricsAddressError, MetricsServer, is_loopback, parse_metrics_address
 from .plugins import Registry, load_registry
 from .run_report import print_summary
-from .supervisor import DRAIN_SECONDS, RunOutcome, Supervisor
+from .shares import flow_digest
+from .supervisor import DRAIN_SECONDS, WAIT_FOR_HOSTS, RunOutcome, Supervisor
 
 __all__ = ["EXIT_FAILED", "EXIT_LOST", "EXIT_OK", "blocks_markdown", "run_blocks", "run_check", "run_keys",
            "run_run"]
@@ -104,19 +105,52 @@ def add_run_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--metrics", metavar="[HOST:]PORT",
                         help="serve the run's counters for a Prometheus scraper at http://HOST:PORT/metrics "
                              "(HOST defaults to 127.0.0.1; another address warns that it is open to the network)")
+    parser.add_argument("--host", metavar="NAME", help="run this host's share of a flow placed on several hosts "
+                        "([hosts.NAME] in the file); every host runs the same file with its own name")
+    parser.add_argument("--one-machine", action="store_true", help="run every block of a flow placed on several "
+                        "hosts here, on this one machine (links stay local), to try the flow before placing it")
+    parser.add_argument("--wait-for-hosts", type=_wait_time, default=WAIT_FOR_HOSTS, metavar="SECONDS",
+                        help=f"with --host: how long to wait for the other hosts' shares before giving up, naming "
+                             f"those missing (default {WAIT_FOR_HOSTS:g})")
     parser.add_argument("--drain-time", type=_drain_time, default=DRAIN_SECONDS, metavar="SECONDS",
                         help=f"after Ctrl-C, wait this long for the flow to drain before aborting it (what is "
                              f"still queued then is counted as lost; default {DRAIN_SECONDS:g})")
 
 
-def _drain_time(text: str) -> float:
+def _seconds(text: str, low: float, high: float) -> float:
     try:
         value = float(text)
     except ValueError:
         value = math.nan
-    if not 0 <= value <= 3600:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds from 0 to 3600")
+    if not low <= value <= high:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds from {low:g} to {high:g}")
     return value
+
+
+def _drain_time(text: str) -> float:
+    return _seconds(text, 0, 3600)
+
+
+def _wait_time(text: str) -> float:
+    return _seconds(text, 1, 86400)
+
+
+def _share_problem(args: argparse.Namespace, flow: Flow) -> str | None:
+    """What is wrong with --host / --one-machine for this flow, or None."""
+    host, one = getattr(args, "host", None), getattr(args, "one_machine", False)
+    names = ", ".join(flow.hosts)
+    if not flow.hosts:
+        if host:
+            return f"{args.flow} declares no hosts ([hosts.NAME]); run it without --host"
+        return None
+    if host and one:
+        return "give --host NAME (this host's share) or --one-machine (every block here), not both"
+    if host is None and not one:
+        return (f"{args.flow} places its blocks on hosts {names}: run 'bandloom run {args.flow} --host NAME' on each "
+                f"of them, or --one-machine to run every block here")
+    if host is not None and host not in flow.hosts:
+        return f"--host {host!r} is not a host of {args.flow}; its hosts: {names}"
+    return None
 
 
 def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) -> int:
@@ -130,8 +164,18 @@ def run_run(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) ->
 
 def _run_checked(args: argparse.Namespace, flow: Flow, launcher: Launcher, log: TextIO) -> int:
     output_dir = Path(args.out) if args.out else Path.cwd()
+    problem = _share_problem(args, flow)
+    if problem:
+        print(f"bandloom: {problem}", file=log)
+        return EXIT_FAILED
+    here = getattr(args, "host", None)
+    if flow.hosts_insecure and here:
+        print(f"bandloom: warning: {flow.path}: [flow] insecure = true: samples cross between hosts in the clear, "
+              f"unauthenticated; anyone on the network can read them or feed this host; use keys = \"FOLDER\" unless "
+              f"the network is yours alone", file=log)
     supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time,
-                            launcher=launcher)
+                            launcher=launcher, here=here, wait_for_hosts=getattr(args, "wait_for_hosts", WAIT_FOR_HOSTS),
+                            digest=flow_digest(flow.path, getattr(args, "set", None) or []) if here else "")
     with contextlib.ExitStack() as stack:
         if args.metrics:
             try:
@@ -145,16 +189,22 @@ def _run_checked(args: argparse.Namespace, flow: Flow, launcher: Launcher, log: 
                       f"one (names of blocks and links, counts); use a loopback address or a firewall", file=log)
             elif not args.quiet:
                 print(f"bandloom: metrics at {server.url}", file=log)
-        outcome = supervisor.run()
+        try:
+            outcome = supervisor.run()
+        except OSError as error:          # this host's share cannot listen where the flow file says
+            print(f"bandloom: {error}", file=log)
+            return EXIT_FAILED
     summary = supervisor.summary(accept_loss=args.accept_loss)
     print_summary(summary, supervisor.failures(), log, quiet=args.quiet)
     if args.report:
         Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
-    if outcome is RunOutcome.INTERRUPTED:
+    if outcome is RunOutcome.INTERRUPTED and (supervisor.stop_signal or not here):
         raise Interrupted(supervisor.stop_signal or signal.SIGINT)
-    if outcome is RunOutcome.FAILED:
+    others = summary.get("other_hosts", {}).values()
+    if outcome is RunOutcome.FAILED or any(h["lost"] or h["outcome"] == "failed" for h in others):
         return EXIT_FAILED
-    return EXIT_LOST if summary["lost_samples_not_accepted"] else EXIT_OK
+    lost = summary["lost_samples_not_accepted"] + sum(h["lost_samples_not_accepted"] for h in others)
+    return EXIT_LOST if lost else EXIT_OK
 
 
 def add_blocks_arguments(parser: argparse.ArgumentParser) -> None:

@@ -111,19 +111,63 @@ def configure(sock: zmq.Socket, queue: int) -> None:
     sock.setsockopt(zmq.MAXMSGSIZE, MESSAGE_BYTES + wire.HEADER_LIMIT)
 
 
-def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) -> Any:
-    """Make ``sock`` a CURVE server with the keys made by 'bandloom keys'; return the authenticator."""
-    from zmq.auth.thread import ThreadAuthenticator
+class _Authenticators:
+    """One ZeroMQ authenticator per context (ZeroMQ allows only one), shared by every CURVE server socket of
+    the context, each with its key folder as its ZAP domain; stopped when the last socket lets it go."""
 
+    def __init__(self) -> None:
+        self.running: dict[int, tuple[Any, set[str]]] = {}
+        self.users: dict[int, int] = {}
+
+    def take(self, context: zmq.Context, keys_dir: Path) -> _AuthenticatorUse:
+        from zmq.auth.thread import ThreadAuthenticator
+
+        key = id(context)
+        if key not in self.running:
+            authenticator = ThreadAuthenticator(context)
+            authenticator.start()
+            self.running[key] = (authenticator, set())
+        authenticator, domains = self.running[key]
+        if str(keys_dir) not in domains:
+            authenticator.configure_curve(domain=str(keys_dir), location=str(keys_dir / "authorized"))
+            domains.add(str(keys_dir))
+        self.users[key] = self.users.get(key, 0) + 1
+        return _AuthenticatorUse(self, key)
+
+    def release(self, key: int) -> None:
+        self.users[key] -= 1
+        if not self.users[key]:
+            authenticator, _ = self.running.pop(key)
+            del self.users[key]
+            authenticator.stop()
+
+
+class _AuthenticatorUse:
+    """A socket's hold on its context's authenticator; ``stop`` lets it go (once)."""
+
+    def __init__(self, pool: _Authenticators, key: int) -> None:
+        self.pool, self.key, self.stopped = pool, key, False
+
+    def stop(self) -> None:
+        if not self.stopped:
+            self.stopped = True
+            self.pool.release(self.key)
+
+
+_AUTHENTICATORS = _Authenticators()
+
+
+def secure_server(sock: zmq.Socket, keys_dir: str | Path, context: zmq.Context) -> _AuthenticatorUse:
+    """Make ``sock`` a CURVE server with the keys made by 'bandloom keys' (clients must hold a key in its
+    ``authorized/``); return its hold on the context's authenticator, to ``stop()`` when it closes."""
     keys_dir = Path(keys_dir)
-    authenticator = ThreadAuthenticator(context)
-    authenticator.start()
-    authenticator.configure_curve(domain="*", location=str(keys_dir / "authorized"))
     public, secret = load_server_keys(keys_dir)
+    use = _AUTHENTICATORS.take(context, keys_dir)
+    sock.zap_domain = str(keys_dir).encode()
     sock.curve_secretkey = secret
     sock.curve_publickey = public
     sock.curve_server = True
-    return authenticator
+    return use
 
 
 def column_major(chunk: Chunk, outlets: list[Outlet]) -> list[np.ndarray | None]:

@@ -18,7 +18,7 @@ are not counted twice.
 from __future__ import annotations
 
 import signal
-from collections.abc import Mapping
+from collections.abc import Collection, Mapping
 from typing import TYPE_CHECKING, Any, TextIO
 
 from bandloom.blocks.text_tables import engineering, render_rows
@@ -62,11 +62,18 @@ def link_counts(flow: Flow, blocks: Mapping[str, BlockRecord]) -> list[tuple[Lin
 
 
 def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, seconds: float,
-              accept_loss: bool = False) -> dict[str, Any]:
-    """The end-of-run report as plain values (what --report writes as JSON), verdict included."""
+              accept_loss: bool = False, local: Collection[str] | None = None) -> dict[str, Any]:
+    """The end-of-run report as plain values (what --report writes as JSON), verdict included.
+
+    For one host's share of a flow, ``local`` names its blocks: the report shows them and the links that
+    touch them (``blocks`` holds the other hosts' blocks too, as their shares last told them), and counts
+    the losses of the links that leave its blocks; the share a link comes from counts its losses."""
     links = []
     losses: list[dict[str, Any]] = []
     for link, sent, received in link_counts(flow, blocks):
+        if local is not None and link.source not in local and link.target not in local:
+            continue
+        crossing = flow.crosses(link) if local is not None else False
         endpoint = sent.delivered_rows is not None
         _, in_flight = received_and_in_flight(sent, received)
         links.append({
@@ -84,6 +91,12 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
         if endpoint:
             links[-1].update(delivered_samples=sent.delivered_rows, consumers=sent.consumers,
                              resent_messages=sent.resent_messages, refused_consumers=sent.refused)
+        if crossing:
+            hosts = flow.instances[link.source].host, flow.instances[link.target or ""].host
+            links[-1]["crosses"] = f"to host {hosts[1]}" if link.source in (local or ()) else f"from host {hosts[0]}"
+            links[-1]["received_samples"] = received.rows if received else None
+            if link.source not in (local or ()):
+                continue                 # its losses are counted by the host it comes from
         consumer = blocks.get(link.target) if link.target else None
         if sent.dropped_rows - sent.down_rows:
             declared = link.options.when_full is WhenFull.DROP
@@ -105,9 +118,13 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
                            "accepted": False})
         if in_flight:
             why = f"not acknowledged by a consumer of the endpoint {when}" if endpoint else f"still in flight {when}"
+            if crossing:
+                why = f"sent to {link.target} on another host, not acknowledged by it {when}"
             if consumer is not None and consumer.left_down:
                 why = f"sent to {link.target} before it failed, read by nobody (on_failure = \"continue\")"
             losses.append({"samples": in_flight, "where": f"link {link.label}", "why": why, "accepted": False})
+    if local is not None:
+        blocks = {name: record for name, record in blocks.items() if name in local}
     for name, record in blocks.items():
         totals = record.totals
         for loss in (totals.losses if totals else []):
@@ -155,7 +172,7 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
     if not quiet:
         show_flight = summary["outcome"] != "finished" or any(x["in_flight_samples"] for x in summary["links"])
         headers = ["link", "samples", "messages", "dropped", "missing", "gaps"] + (["in flight"] if show_flight else [])
-        rows = [[x["link"], x["sent_samples"], x["sent_messages"], x["dropped_samples"], x["missing_samples"],
+        rows = [[_link_name(x), x["sent_samples"], x["sent_messages"], x["dropped_samples"], x["missing_samples"],
                  x["discontinuities"]] + (["-" if x["in_flight_samples"] is None else x["in_flight_samples"]]
                                           if show_flight else []) for x in summary["links"]]
         print("\n".join("  " + line for line in render_rows(headers, rows).splitlines()), file=log)
@@ -171,7 +188,17 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
         for name, block in summary["blocks"].items():
             for line in block["report"]:
                 print(f"  {name}: {line}", file=log)
+        for host, other in summary.get("other_hosts", {}).items():
+            lost = other["lost_samples"]
+            how = other["lost"] or f"{other['outcome'] or other['state']}, " + (
+                f"{lost} samples lost (see its summary)" if lost else "no sample lost")
+            print(f"  host {host}: {how}", file=log)
     print(f"bandloom: {verdict(summary)}", file=log)
+
+
+def _link_name(row: Mapping[str, Any]) -> str:
+    """A link as the summary table shows it: its label, and the host it goes to or comes from."""
+    return row["link"] + (f" ({row['crosses']})" if "crosses" in row else "")
 
 
 def received_and_in_flight(sent: OutletStats, received: InletStats | None) -> tuple[int | None, int | None]:

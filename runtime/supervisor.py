@@ -34,6 +34,7 @@ from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessE
 from .flow import FailurePolicy, Flow, Instance, Link, OnFailure
 from .launcher import LaunchedProcess, Launcher
 from .run_report import StatusDisplay, describe_exit, summarise
+from .shares import HEARTBEAT_SECONDS, SILENCE_SECONDS, BlockView, RemoteProcess, ShareNetwork, ShareState, ShareStatus
 from .worker_spec import LinkSpec, WorkerSpec
 
 __all__ = ["BlockRecord", "DRAIN_SECONDS", "RunOutcome", "Supervisor"]
@@ -41,6 +42,7 @@ __all__ = ["BlockRecord", "DRAIN_SECONDS", "RunOutcome", "Supervisor"]
 DRAIN_SECONDS = 10.0
 ABORT_SECONDS = 5.0
 DISPLAY_INTERVAL = 0.5
+WAIT_FOR_HOSTS = 60.0          # s a share waits for every other host's share before it gives up
 REPEAT_SECONDS = 0.1           # a control word that holds is said again this often (PUB may miss a late subscriber)
 
 
@@ -55,7 +57,7 @@ class BlockRecord:
     """What the supervisor knows of one block process."""
 
     name: str
-    process: subprocess.Popen | LaunchedProcess
+    process: subprocess.Popen | LaunchedProcess | RemoteProcess
     state: BlockState = BlockState.STARTING
     last: StatsMessage | None = None
     rate: float = 0.0             # rows per second between the last two statistics
@@ -105,11 +107,13 @@ class BlockRecord:
         self.state = next_state(self.state, ProcessEnd.CLEAN if code == 0 else ProcessEnd.FAULT)
 
 
-def link_specs(folder: str, inst: Instance, *, earlier: StatsMessage | None = None,
+def link_specs(folder: str, inst: Instance, *, flow: Flow | None = None, earlier: StatsMessage | None = None,
                down: frozenset[str] = frozenset()) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
     """The ends of ``inst``'s links as its worker opens them. For a restarted block, ``earlier`` holds
     its predecessors' counters (each end resumes where they left it); ``down`` names the blocks that
-    are down now (outputs to them start detached)."""
+    are down now (outputs to them start detached). A link that crosses to another host (``flow`` given,
+    run as shares) is an endpoint its source's host serves on the link's port, which the consumer's
+    host connects to, both with the hosts' keys."""
     def spec(link: Link, *, sending: bool) -> LinkSpec:
         resume: dict = {}
         if earlier is not None:
@@ -119,10 +123,15 @@ def link_specs(folder: str, inst: Instance, *, earlier: StatsMessage | None = No
             else:
                 got = earlier.inputs.get(link.id)
                 resume = dict(resume_index=got.next_index if got else 0)
-        return LinkSpec(link=link.id, label=link.label, endpoint=link.endpoint or f"ipc://{folder}/{link.id}",
-                        stream=link.stream, bind=link.endpoint is not None if sending else True,
+        endpoint, bind = link.endpoint or f"ipc://{folder}/{link.id}", link.endpoint is not None if sending else True
+        keys = link.options.keys if sending else None
+        if flow is not None and flow.crosses(link):
+            source_host = flow.hosts[flow.instances[link.source].host or ""]
+            endpoint = source_host.endpoint(flow.link_port(link), bind=sending)
+            bind, keys = sending, flow.host_keys
+        return LinkSpec(link=link.id, label=link.label, endpoint=endpoint, stream=link.stream, bind=bind,
                         columns=link.columns if sending else None, queue=link.options.queue,
-                        when_full=link.options.when_full, keys=link.options.keys if sending else None,
+                        when_full=link.options.when_full, keys=keys,
                         batch_seconds=link.options.latency if sending and link.target else 0.0,
                         consumer=link.target if sending else None,
                         attached=not (sending and link.target in down), **resume)
@@ -135,8 +144,18 @@ class Supervisor:
     """Runs one flow: ``run()`` returns the outcome, ``summary()`` what happened."""
 
     def __init__(self, flow: Flow, *, output_dir: str | Path, quiet: bool = False, log: TextIO = sys.stderr,
-                 drain_seconds: float = DRAIN_SECONDS, launcher: Launcher | None = None) -> None:
+                 drain_seconds: float = DRAIN_SECONDS, launcher: Launcher | None = None, here: str | None = None,
+                 digest: str = "", wait_for_hosts: float = WAIT_FOR_HOSTS) -> None:
         self.flow = flow
+        self.here = here              # the host whose share this is (None: the whole flow, on this machine)
+        self.local = {name: inst for name, inst in flow.instances.items() if here is None or inst.host == here}
+        self.digest = digest
+        self.wait_for_hosts = wait_for_hosts
+        self.network: ShareNetwork | None = None
+        self.peer_trouble = ""        # why the run stopped because of another host
+        self.stopping_since: float | None = None
+        self.aborting_since: float | None = None
+        self.peers_settled = True
         self.launcher = launcher      # forks the workers (see .launcher); one of our own when not given
         self.drain_seconds = drain_seconds
         self.output_dir = output_dir
@@ -157,7 +176,8 @@ class Supervisor:
     def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
         """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
         down = frozenset(name for name, r in self.blocks.items() if r.down)
-        inputs, outputs = link_specs(self.folder, inst, earlier=record.earlier if record else None, down=down)
+        inputs, outputs = link_specs(self.folder, inst, flow=self.flow if self.here else None,
+                                     earlier=record.earlier if record else None, down=down)
         return WorkerSpec(
             name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
             flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,
@@ -197,14 +217,21 @@ class Supervisor:
         started = time.monotonic()
         own_launcher = self.launcher is None
         try:
+            if self.here is not None:
+                self.network = ShareNetwork(self.flow, self.here, digest=self.digest, context=context)
+                self.peers_settled = False
             if self.launcher is None:
                 self.launcher = Launcher()
-            self.launcher.preload(sorted({inst.type_name for inst in self.flow.instances.values()}))
-            for inst in self.flow.instances.values():
+            self.launcher.preload(sorted({inst.type_name for inst in self.local.values()}))
+            for inst in self.local.values():
                 self.blocks[inst.name] = BlockRecord(inst.name, self.start_worker(inst, self.worker_spec(inst)),
                                                      policy=inst.policy)
             self.watch(control, stats)
+            if self.network is not None:
+                self.settle_with_peers()
         finally:
+            if self.network is not None:
+                self.network.close()
             for record in self.blocks.values():
                 if record.process.poll() is None:
                     record.process.kill()
@@ -223,9 +250,8 @@ class Supervisor:
         return self.outcome()
 
     def watch(self, control: zmq.Socket, stats: zmq.Socket) -> None:
-        stopping_since = None
-        aborting_since = None
         last_display = 0.0
+        began = time.monotonic()
         poller = zmq.Poller()
         poller.register(stats, zmq.POLLIN)
         while True:
@@ -239,37 +265,44 @@ class Supervisor:
                 self.launcher_lost = (f"the worker launcher (pid {self.launcher.process.pid}) died "
                                       f"({describe_exit(self.launcher.process.returncode)}); its workers stopped")
                 self.say(self.launcher_lost)
-                aborting_since = aborting_since or now
+                self.aborting_since = self.aborting_since or now
             for record in self.blocks.values():
                 code = record.process.poll()
                 if code is not None and record.state not in TERMINAL_STATES | {BlockState.RESTARTING}:
                     self.drain_stats(stats)
                     record.process_ended(code)
                     if record.state.is_failure:
-                        self.block_failed(record, now, aborting=aborting_since is not None)
-            if self.failed and aborting_since is None:
-                aborting_since = now
+                        self.block_failed(record, now, aborting=self.aborting_since is not None)
+            if self.failed and self.aborting_since is None:
+                self.aborting_since = now
                 for record in self.blocks.values():
                     if record.state is BlockState.RESTARTING:     # no new process for an aborted run
                         record.state = BlockState.DIED
             for record in self.blocks.values():
                 if record.state is BlockState.RESTARTING and now >= record.restart_at:
                     self.restart(record)
+            if self.network is not None:
+                self.talk_to_peers(now, began)
             running = [r for r in self.blocks.values() if r.process.poll() is None]
             if not running and not any(r.state is BlockState.RESTARTING for r in self.blocks.values()):
                 self.drain_stats(stats)
                 return
-            if self.interrupted and stopping_since is None:
-                stopping_since = now
+            if self.interrupted and self.stopping_since is None:
+                self.stopping_since = now
                 self.say("stopping: sources end their streams, the rest drains (Ctrl-C again is not needed)")
-            if stopping_since is not None and aborting_since is None and now - stopping_since > self.drain_seconds:
+            elif self.network is not None and self.network.stopping() and self.stopping_since is None:
+                self.stopping_since = now
+                self.say(f"stopping: host {self.network.stopping()[0].name} was asked to stop; sources end their "
+                         f"streams, the rest drains")
+            if self.stopping_since is not None and self.aborting_since is None and now - self.stopping_since > self.drain_seconds:
                 self.say(f"still draining after {self.drain_seconds:g} s; aborting (what is still queued is counted "
                          f"as lost)")
-                aborting_since = now
+                self.aborting_since = now
             said_hello = (BlockState.RUNNING, BlockState.ENDING, BlockState.DONE)
-            if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()):
-                self.barrier_passed = True          # every worker has said hello: its links are open
-            if self.barrier_passed and aborting_since is None and not self.failed:
+            if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()) and \
+                    (self.network is None or self.network.all_ready()):
+                self.barrier_passed = True          # every worker (of every host) has said hello: its links are open
+            if self.barrier_passed and self.aborting_since is None and not self.failed:
                 self.tell(control, now, Control(ControlWord.GO).encode())
             for name in self.releasable():
                 self.tell(control, now, Control(ControlWord.RELEASE, name).encode())
@@ -278,12 +311,12 @@ class Supervisor:
                     self.tell(control, now, Control(ControlWord.DETACH, record.name).encode())
                 elif record.restarts:
                     self.tell(control, now, Control(ControlWord.ATTACH, record.name).encode())
-            if aborting_since is not None:
+            if self.aborting_since is not None:
                 self.tell(control, now, Control(ControlWord.ABORT).encode())
-                if now - aborting_since > ABORT_SECONDS:
+                if now - self.aborting_since > ABORT_SECONDS:
                     for record in running:
                         record.process.kill()
-            elif stopping_since is not None:
+            elif self.stopping_since is not None:
                 self.tell(control, now, Control(ControlWord.STOP).encode())
             if self.display and now - last_display >= DISPLAY_INTERVAL:
                 self.display.show(self.flow, self.blocks)
@@ -331,8 +364,9 @@ class Supervisor:
         for name, record in self.blocks.items():
             if record.state is not BlockState.ENDING or record.process.poll() is not None:
                 continue
+            # a consumer on another host acknowledges what it takes (an endpoint): no release needed
             consumers = [self.blocks[link.target] for port in self.flow.instances[name].outputs.values()
-                         for link in port if link.target]
+                         for link in port if link.target in self.blocks]
             if all(c.left_down or (not c.down and (c.process.poll() is not None
                                                    or c.state in (BlockState.DONE, BlockState.ABORTED)))
                    for c in consumers):
@@ -360,14 +394,110 @@ class Supervisor:
 
     # -- outcome -------------------------------------------------------------------------------
     def outcome(self) -> RunOutcome:
-        if self.failed or self.launcher_lost or any(r.left_down for r in self.blocks.values()):
+        if self.failed or self.launcher_lost or self.peer_trouble or any(r.left_down for r in self.blocks.values()):
             return RunOutcome.FAILED
-        return RunOutcome.INTERRUPTED if self.interrupted else RunOutcome.FINISHED
+        stopped_by_peer = self.network is not None and self.stopping_since is not None
+        return RunOutcome.INTERRUPTED if self.interrupted or stopped_by_peer else RunOutcome.FINISHED
 
     def summary(self, *, accept_loss: bool = False) -> dict[str, Any]:
         """The end-of-run report as plain values (also what --report writes as JSON)."""
-        return summarise(self.flow, self.blocks, outcome=self.outcome().value, seconds=self.elapsed,
-                         accept_loss=accept_loss or self.flow.accept_loss)
+        blocks: dict[str, BlockRecord] = dict(self.blocks)
+        if self.network is not None:
+            blocks.update(self.remote_records())
+        summary = summarise(self.flow, blocks, outcome=self.outcome().value, seconds=self.elapsed,
+                            accept_loss=accept_loss or self.flow.accept_loss,
+                            local=set(self.local) if self.here else None)
+        if self.network is not None:
+            summary["host"] = self.here
+            summary["other_hosts"] = self.network.report()
+        return summary
+
+    # -- shares of a flow on several hosts (see .shares) ---------------------------------------
+    def share_status(self, *, final: bool = False) -> ShareStatus:
+        """What this share tells the others: its state, and its blocks with their crossing links' counters."""
+        crossing = {link.id for link in self.flow.crossing_links()}
+        blocks = {}
+        for name, record in self.blocks.items():
+            totals = record.totals
+            blocks[name] = BlockView(
+                state=record.state, pid=record.pid,
+                outputs={k: v for k, v in (totals.outputs if totals else {}).items() if k in crossing},
+                inputs={k: v for k, v in (totals.inputs if totals else {}).items() if k in crossing})
+        if final:
+            summary = summarise(self.flow, {**self.blocks, **self.remote_records()}, outcome=self.outcome().value,
+                                seconds=self.elapsed, accept_loss=self.flow.accept_loss, local=set(self.local))
+            return ShareStatus(host=self.here or "", flow_digest=self.digest, state=ShareState.FINISHED,
+                               heard=self.heard(), outcome=self.outcome().value, blocks=blocks,
+                               lost_samples=summary["lost_samples"],
+                               lost_samples_not_accepted=summary["lost_samples_not_accepted"])
+        if self.aborting_since is not None:
+            state = ShareState.ABORTING
+        elif self.stopping_since is not None:
+            state = ShareState.STOPPING
+        elif self.barrier_passed:
+            state = ShareState.RUNNING
+        elif self.blocks and all(r.state is not BlockState.STARTING for r in self.blocks.values()):
+            state = ShareState.READY
+        else:
+            state = ShareState.STARTING
+        reason = "; ".join(self.failures()) if state is ShareState.ABORTING else ""
+        return ShareStatus(host=self.here or "", flow_digest=self.digest, state=state, heard=self.heard(),
+                           reason=reason or ("aborted" if state is ShareState.ABORTING else ""), blocks=blocks)
+
+    def heard(self) -> tuple[str, ...]:
+        assert self.network is not None
+        return tuple(p.name for p in self.network.peers.values() if p.status is not None)
+
+    def talk_to_peers(self, now: float, began: float) -> None:
+        """One turn of the shares' channel: read the peers, say where this share stands, and abort when a
+        peer is in trouble or the start waits too long."""
+        network = self.network
+        assert network is not None
+        network.read(now)
+        trouble = network.trouble(now)
+        if trouble is None and not self.barrier_passed and now - began > self.wait_for_hosts:
+            trouble = network.waiting_message(now - began)
+        if trouble and not self.peer_trouble:
+            self.peer_trouble = trouble
+            self.say(trouble)
+            self.aborting_since = self.aborting_since or now
+        network.publish(self.share_status(), now)
+
+    def settle_with_peers(self) -> None:
+        """This share has ended: say so, with its counts, until every peer has finished or is lost (their
+        last counters are what this share's summary shows of the links that cross)."""
+        network = self.network
+        assert network is not None
+        final = self.share_status(final=True)
+        give_up = time.monotonic() + self.drain_seconds + ABORT_SECONDS + SILENCE_SECONDS
+        while True:
+            now = time.monotonic()
+            network.read(now)
+            network.publish(final, now)
+            if network.settled(now):
+                break
+            if now > give_up:
+                late = [p.name for p in network.peers.values() if p.state is not ShareState.FINISHED and not p.lost]
+                self.say(f"hosts {', '.join(late)} have not finished {give_up - now + self.drain_seconds:.0f} s after "
+                         f"this one; their last counts are shown")
+                break
+            time.sleep(0.05)
+        self.peers_settled = True
+        network.publish(final, time.monotonic() + HEARTBEAT_SECONDS)     # once more, for a peer that joined late
+
+    def remote_records(self) -> dict[str, BlockRecord]:
+        """Blocks of the other hosts as their shares last told them: state and crossing links' counters."""
+        if self.network is None:
+            return {}
+        records = {}
+        for name, (_, view) in self.network.views().items():
+            if name in self.blocks:
+                continue
+            record = BlockRecord(name, RemoteProcess(view.pid), state=view.state)
+            record.last = StatsMessage(event=WorkerEvent.STATS, block=name, pid=view.pid, time=0.0,
+                                       inputs=dict(view.inputs), outputs=dict(view.outputs))
+            records[name] = record
+        return records
 
     @staticmethod
     def failure_line(record: BlockRecord) -> str:
@@ -379,4 +509,5 @@ class Supervisor:
         """One line per failure: those the run survived (restarted, or left down), then those that stopped it."""
         lines = [line for record in self.blocks.values() for line in record.incidents]
         lines += [self.launcher_lost] if self.launcher_lost else []
+        lines += [self.peer_trouble] if self.peer_trouble else []
         return lines + [self.failure_line(self.blocks[name]) for name in self.failed]

@@ -42,6 +42,7 @@ from bandloom.blocks.block import Block, BlockContext, Output, chunks_of
 from . import wire
 from ._memory import reuse_chunk_buffers
 from .control import Control, ControlWord, StatsMessage, WorkerEvent
+from .endpoint_client import EndpointInlet
 from .endpoints import EndpointOutlet
 from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet, column_major
 from .plugins import load_registry
@@ -168,8 +169,8 @@ class Worker:
         block = self.block = cls(spec.params, context)
         inputs = {port: link.stream for port, link in spec.inputs.items()}
         block.output_streams(dict(inputs))          # validates again, in this process
-        for port, link in spec.inputs.items():
-            self.inlets.append(Inlet(self.context, link, port))
+        for port, link in spec.inputs.items():       # an input from another host connects to its endpoint
+            self.inlets.append((Inlet if link.bind else EndpointInlet)(self.context, link, port))
         for port, links in spec.outputs.items():
             self.outlets[port] = [(EndpointOutlet if link.bind else Outlet)(self.context, link, self.while_waiting)
                                   for link in links]
@@ -232,7 +233,7 @@ class Worker:
                     chunk = inlet.receive()
                 except wire.WireError as error:
                     raise RuntimeError(f"link {inlet.spec.label}: bad message: {error}") from None
-                if chunk is not None:
+                if chunk is not None and (chunk.count or chunk.dropped or chunk.discontinuity):
                     self.rows_in += chunk.count
                     if self.first_rows_clock is None and chunk.count:
                         self.first_rows_clock = time.monotonic()
@@ -259,7 +260,7 @@ class Worker:
 
     def wait_for_release(self) -> None:
         """Keep the links open until the consumers have read everything (see the module doc)."""
-        if not any(o.spec.endpoint.startswith("ipc://") and not o.spec.bind for o in self.all_outlets()):
+        if not any(not o.spec.bind for o in self.all_outlets()):     # an endpoint waits for acknowledgements instead
             return
         self.send_stats(WorkerEvent.ENDING)
         while not self.released and not self.poll_control():

@@ -84,7 +84,7 @@ def test_block_contract_is_checked_at_registration(mutate, message):
 
 def test_reserved_keys_are_the_runtime_keys_of_a_block_table():
     """A block parameter may not take a name the runtime reads from [blocks.NAME]: type, per_channel and
-    the failure options (held equal here so that a new option cannot be shadowed by a plugin)."""
+    the failure options and host (held equal here so that a new option cannot be shadowed by a plugin)."""
     from bandloom.runtime.flow.declarations import BLOCK_OPTION_KEYS
     from bandloom.runtime.plugins import RESERVED_KEYS
-    assert RESERVED_KEYS == ("type", "per_channel", *BLOCK_OPTION_KEYS)
+    assert RESERVED_KEYS == ("type", "per_channel", *BLOCK_OPTION_KEYS, "host")

@@ -21,13 +21,14 @@ from bandloom.blocks.params import shortened
 
 from ..keys import key_folder_problem
 from ..plugins import RESERVED_KEYS, Registry
-from .model import FailurePolicy, LinkOptions, OnFailure, WhenFull
+from .hosts import check_placement, read_hosts
+from .model import FailurePolicy, Host, LinkOptions, OnFailure, WhenFull
 from .problems import KeyPath, ProblemLog, did_you_mean, format_key_path, known_names
 
 __all__ = ["BLOCK_OPTIONS", "Declaration", "FLOW_KEYS", "FLOW_OPTIONS", "LINK_KEYS", "LINK_OPTIONS", "PER_CHANNEL_KEYS",
            "PLACEHOLDERS", "RawLink", "TOP_LEVEL_KEYS", "parse_port_ref", "read_tables"]
 
-TOP_LEVEL_KEYS = ("flow", "blocks", "links")
+TOP_LEVEL_KEYS = ("flow", "hosts", "blocks", "links")
 #: The keys of the [flow] table, declared like block parameters.
 FLOW_OPTIONS: tuple[Param, ...] = (
     Param("name", "str", "the flow's name in summaries", default=None),
@@ -36,6 +37,10 @@ FLOW_OPTIONS: tuple[Param, ...] = (
           default=False),
     Param("max_processes", "int", "the most block processes the flow may start (default: one per 128 MiB of "
           "this machine's memory, at least 16 and at most 1000)", default=None, minimum=1, maximum=100_000),
+    Param("keys", "str", "with [hosts.NAME]: the folder made by 'bandloom keys' that every host holds a copy of; "
+          "links between hosts are encrypted and authenticated with it", default=None,
+          rule="a folder made by 'bandloom keys', relative to the flow file"),
+    Param("insecure", "bool", "with [hosts.NAME]: links between hosts go in the clear, unauthenticated", default=False),
 )
 FLOW_KEYS = tuple(p.name for p in FLOW_OPTIONS)
 PER_CHANNEL_KEYS = ("from", "select", "input", "tolerance")
@@ -98,6 +103,7 @@ class Declaration:
     per_channel: dict[str, Any] | None
     policy: FailurePolicy
     ok: bool                                                          # declared without problems
+    host: str | None = None                                           # [hosts.NAME] it runs on
     feeds: list[tuple[int | str, str]] = field(default_factory=list)  # (links index or "per_channel", port)
 
 
@@ -191,8 +197,9 @@ class _TableReader:
             return None
         cls, params, per_channel = read
         policy = self.failure_policy(name, cls, table)
+        host = table.get("host")
         return Declaration(name=name, cls=cls, params=params, per_channel=per_channel, policy=policy,
-                           ok=len(self.log) == before)
+                           ok=len(self.log) == before, host=host if isinstance(host, str) else None)
 
     def failure_policy(self, name: str, cls: type[Block], table: dict[str, Any]) -> FailurePolicy:
         at: KeyPath = ("blocks", name)
@@ -426,6 +433,8 @@ class Tables:
     declarations: dict[str, Declaration]
     links: list[RawLink]
     claimed: set[tuple[str, str | None]]
+    hosts: dict[str, Host] = field(default_factory=dict)
+    host_keys: str | None = None
 
 
 def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_dir: Path) -> Tables:
@@ -465,5 +474,8 @@ def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_
         link = reader.link(i, table, decls, set(blocks))
         if link:
             links.append(link)
-    return Tables(meta=options, declarations=decls, links=links,
-                  claimed=reader.claimed)
+    hosts = read_hosts(data.get("hosts"), log)
+    placed = {name: table.get("host") for name, table in blocks.items() if isinstance(table, dict)}
+    host_keys = check_placement(log, hosts, placed, options, flow_dir) if "hosts" not in data or hosts else None
+    return Tables(meta=options, declarations=decls, links=links, claimed=reader.claimed, hosts=hosts,
+                  host_keys=host_keys)

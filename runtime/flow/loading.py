@@ -10,6 +10,7 @@ from typing import Any
 from ..plugins import Registry
 from .declarations import read_tables
 from .expansion import check_inputs, default_process_limit, expand, wiring_order
+from .hosts import check_host_ports
 from .locator import KeyLocator
 from .model import Flow, Instance, Link, OnFailure
 from .output_paths import check_output_paths
@@ -47,6 +48,8 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
         out = Path(output_dir) if output_dir else Path.cwd()
         instances, expanded = expand(log, decls, links, order, flow_path=path, output_dir=out, max_processes=limit)
         check_output_paths(log, instances, flow_path=path, output_dir=out)
+        if tables.hosts:
+            check_host_ports(log, tables.hosts, instances, expanded)
     continuing = {i.declared: i for i in instances.values() if i.policy.on_failure is OnFailure.CONTINUE
                   and any(link.target for links in i.outputs.values() for link in links)}
     for declared, inst in continuing.items():
@@ -62,7 +65,8 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
         raise FlowErrors(log.problems)
     return Flow(path=path, name=tables.meta.get("name") or path.stem, description=tables.meta.get("description", ""),
                 accept_loss=bool(tables.meta.get("accept_loss")),
-                instances=instances, links=expanded)
+                instances=instances, links=expanded, hosts=tables.hosts, host_keys=tables.host_keys,
+                hosts_insecure=bool(tables.hosts and tables.meta.get("insecure")))
 
 
 def load_flow(path: str | Path, registry: Registry, *, output_dir: str | Path | None = None,

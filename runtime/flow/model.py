@@ -17,7 +17,7 @@ from bandloom.blocks.block import Block, StreamInfo
 
 from .problems import KeyPath, format_key_path
 
-__all__ = ["FailurePolicy", "Flow", "Instance", "Link", "LinkOptions", "OnFailure", "WhenFull"]
+__all__ = ["FailurePolicy", "Flow", "Host", "Instance", "Link", "LinkOptions", "OnFailure", "WhenFull"]
 
 
 class WhenFull(str, Enum):
@@ -111,6 +111,7 @@ class Instance:
     outputs: dict[str, list[Link]] = field(default_factory=dict)       # port -> links, filled as consumers appear
     output_streams: dict[str, StreamInfo] = field(default_factory=dict)
     policy: FailurePolicy = FailurePolicy()
+    host: str | None = None          # the [hosts.NAME] it runs on (None: a flow without hosts)
 
     @property
     def type_name(self) -> str:
@@ -122,8 +123,33 @@ class Instance:
 
 
 @dataclass(frozen=True, kw_only=True)
+class Host:
+    """One ``[hosts.NAME]`` table: a machine that runs a share of the flow (docs/flow-files.md, "Hosts").
+
+    ``address`` is where the other hosts reach it; ``listen`` the local address its share binds;
+    ``port`` the first of its TCP ports: the share's own channel to its peers, then one port for
+    each link leaving the host, in the order the links appear (see :meth:`Flow.link_port`).
+    """
+
+    name: str
+    address: str
+    listen: str
+    port: int
+
+    def endpoint(self, port: int, *, bind: bool) -> str:
+        """``tcp://ADDRESS:PORT``: where this host binds (``listen``) or is reached (``address``)."""
+        host = self.listen if bind else self.address
+        return f"tcp://[{host}]:{port}" if ":" in host else f"tcp://{host}:{port}"
+
+
+@dataclass(frozen=True, kw_only=True)
 class Flow:
-    """A flow ready to run: instances in topological order (producers first) and every link."""
+    """A flow ready to run: instances in topological order (producers first) and every link.
+
+    A flow with ``hosts`` is run as one share per host (``bandloom run FLOW --host NAME``): each
+    instance names its host; a link whose ends are on different hosts *crosses*, and is carried
+    over TCP, encrypted with the key folder ``host_keys`` unless ``hosts_insecure``.
+    """
 
     path: Path
     name: str
@@ -131,3 +157,27 @@ class Flow:
     instances: dict[str, Instance]
     links: list[Link]
     accept_loss: bool = False        # [flow] accept_loss: lost samples do not change the exit status
+    hosts: dict[str, Host] = field(default_factory=dict)
+    host_keys: str | None = None     # [flow] keys: the folder every host holds a copy of
+    hosts_insecure: bool = False     # [flow] insecure: links between hosts in the clear
+
+    def crosses(self, link: Link) -> bool:
+        """Whether the link's two ends run on different hosts (endpoints for outside programs never do)."""
+        if link.target is None:
+            return False
+        return self.instances[link.source].host != self.instances[link.target].host
+
+    def crossing_links(self) -> list[Link]:
+        return [link for link in self.links if self.crosses(link)]
+
+    def link_port(self, link: Link) -> int:
+        """The TCP port a crossing link is served on, on its source's host: after the host's own port,
+        one for each crossing link leaving that host, in link order."""
+        host = self.instances[link.source].host
+        leaving = [x.id for x in self.crossing_links() if self.instances[x.source].host == host]
+        assert host is not None and link.id in leaving, f"{link.label} does not cross hosts"
+        return self.hosts[host].port + 1 + leaving.index(link.id)
+
+    def share(self, host: str) -> list[str]:
+        """The instances that run on ``host``, producers first."""
+        return [name for name, inst in self.instances.items() if inst.host == host]
