@@ -211,6 +211,10 @@ class EndpointInlet(Inlet):
         return Chunk(got.data, header["first_index"],
                      discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or for_block), dropped=for_block)
 
+    def processed(self) -> None:
+        """Acknowledge the chunk the block has taken, at once: the sending host then counts it delivered."""
+        self.client.acknowledge()
+
     def _empty(self, first_index: int, dropped: int) -> Chunk:
         shape = (0,) if self.stream.width == 1 else (0, self.stream.width)
         return Chunk(np.zeros(shape, self.stream.dtype), first_index, discontinuity=bool(dropped), dropped=dropped)

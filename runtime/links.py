@@ -491,6 +491,10 @@ class Inlet(_LinkEnd):
                      discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or for_block),
                      dropped=for_block)
 
+    def processed(self) -> None:
+        """The block has taken the chunk last received (and what it made of it is sent on). Nothing to do
+        here: ZeroMQ took the message off the link when it was read."""
+
     def stats(self) -> InletStats:
         c = self.continuity
         return InletStats(rows=c.rows, messages=self.messages, seq=c.last_seq, gaps=c.gaps, missing=c.missing,

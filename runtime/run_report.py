@@ -180,7 +180,8 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
               + ("; in flight: sent, not yet received when the run stopped" if show_flight else "") + ")", file=log)
         for x in summary["links"]:
             if "delivered_samples" in x:
-                notes = [f"{x['resent_messages']} messages sent again after a consumer left"] if x["resent_messages"] \
+                notes = [f"{x['resent_messages']} message{'s' if x['resent_messages'] != 1 else ''} sent again after a "
+                         f"consumer left"] if x["resent_messages"] \
                     else []
                 notes += [f"{x['refused_consumers']} consumers refused (one at a time)"] if x["refused_consumers"] else []
                 print(f"  {x['link']}: {x['delivered_samples']} samples acknowledged by {x['consumers']} consumer"
@@ -190,7 +191,11 @@ def print_summary(summary: Mapping[str, Any], failures: list[str], log: TextIO, 
                 print(f"  {name}: {line}", file=log)
         for host, other in summary.get("other_hosts", {}).items():
             lost = other["lost_samples"]
-            how = other["lost"] or f"{other['outcome'] or other['state']}, " + (
+            if other["lost"]:
+                text = other["lost"]
+                print(f"  {text}" if text.startswith(f"host {host} ") else f"  host {host}: {text}", file=log)
+                continue
+            how = f"{other['outcome'] or other['state']}, " + (
                 f"{lost} samples lost (see its summary)" if lost else "no sample lost")
             print(f"  host {host}: {how}", file=log)
     print(f"bandloom: {verdict(summary)}", file=log)
@@ -207,7 +212,10 @@ def received_and_in_flight(sent: OutletStats, received: InletStats | None) -> tu
     ends report at different moments); None for both when nothing is known of the far end. Rows the
     sender holds in a batch are not sent yet: they are its ``held_rows``."""
     if sent.delivered_rows is not None:
-        return sent.delivered_rows, max(0, sent.rows - sent.delivered_rows)
+        # a link to a block on another host: what it acknowledged, or what it said it received if that is
+        # more (its acknowledgement of the last chunk may not have reached the sender when both stopped)
+        reached = max(sent.delivered_rows, received.rows if received else 0)
+        return reached, max(0, sent.rows - reached)
     if received is None:
         return None, None
     return received.rows, max(0, sent.rows - received.rows - received.lost_at_restart)

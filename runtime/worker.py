@@ -238,6 +238,7 @@ class Worker:
                     if self.first_rows_clock is None and chunk.count:
                         self.first_rows_clock = time.monotonic()
                     self.emit(self.timed(partial(block.consume, inlet.port, chunk)))
+                    inlet.processed()
                 if inlet.ended:
                     open_inlets.discard(inlet)
                     poller.unregister(sock)
