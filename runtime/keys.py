@@ -17,7 +17,7 @@ import shutil
 import stat
 from pathlib import Path
 
-__all__ = ["KeyFolderError", "key_folder_problem", "load_server_keys", "make_key_folder"]
+__all__ = ["KeyFolderError", "client_folder_problem", "key_folder_problem", "load_server_keys", "make_key_folder"]
 
 
 class KeyFolderError(ValueError):
@@ -96,3 +96,27 @@ def load_server_keys(folder: str | Path) -> tuple[bytes, bytes]:
     public, secret = zmq.auth.load_certificate(str(Path(folder) / "server.key_secret"))
     assert secret is not None
     return public, secret
+
+
+def client_folder_problem(folder: str | Path) -> str | None:
+    """What is wrong with the keys a consumer connects with, or None: ``client.key_secret`` (its own key
+    pair, secret, not open to other users) and ``server.key`` (the endpoint's public key), both loadable."""
+    import zmq.auth
+
+    folder = Path(folder)
+    secret, server = folder / "client.key_secret", folder / "server.key"
+    for path in (secret, server):
+        if not path.is_file():
+            return f"{path} is missing; copy client.key_secret and server.key from the endpoint's 'bandloom keys' folder"
+    for path in (folder, secret):
+        problem = _open_to_others(path)
+        if problem:
+            return problem
+    for path in (secret, server):
+        try:
+            public, _ = zmq.auth.load_certificate(str(path))
+        except Exception as error:             # zmq.auth raises several kinds for a damaged file
+            return f"{path} is not a key file made by 'bandloom keys' ({type(error).__name__}: {error})"
+        if len(public) != 40:
+            return f"{path} holds no usable key; copy it again from the 'bandloom keys' folder"
+    return None
