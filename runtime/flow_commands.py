@@ -91,7 +91,38 @@ def run_check(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) 
                 desc = f"{stream.sample_type} at {format_frequency(stream.sample_rate)}, centre " \
                        f"{format_frequency(stream.centre_frequency)}"
             out.write(f"  {inst.name}.{port}: {desc}\n")
+    for line in describe_hosts(flow):
+        out.write(line + "\n")
     return 0
+
+
+def describe_hosts(flow: Flow) -> list[str]:
+    """For a flow placed on hosts: each host's blocks and the TCP ports it listens on (for its firewall),
+    then each link between hosts with the bandwidth it needs (samples/s x bytes per sample x channels)."""
+    if not flow.hosts:
+        return []
+    lines = ["hosts (start each with 'bandloom run FLOW --host NAME'; open these TCP ports to the other hosts):"]
+    crossing = flow.crossing_links()
+    for name, host in flow.hosts.items():
+        blocks = flow.share(name)
+        shown = ", ".join(blocks[:8]) + (f" and {len(blocks) - 8} more" if len(blocks) > 8 else "")
+        ports = [flow.link_port(link) for link in crossing if flow.instances[link.source].host == name]
+        served = f", {ports[0]}..{ports[-1]} (links to other hosts)" if ports else ""
+        lines.append(f"  {name} ({host.address}): {shown or 'no blocks'}; TCP {host.port} (the hosts' channel){served}")
+    if crossing:
+        lines.append("links between hosts:")
+    total = 0.0
+    for link in crossing:
+        stream = link.stream
+        rate = stream.sample_rate * stream.dtype.itemsize * stream.width
+        total += rate
+        source, target = flow.instances[link.source].host, flow.instances[link.target or ""].host
+        lines.append(f"  {link.label}: {source} -> {target} on port {flow.link_port(link)}, "
+                     f"{format_frequency(stream.sample_rate).replace('Hz', 'samples/s')} x {stream.dtype.itemsize} B"
+                     f"{f' x {stream.width} channels' if stream.width > 1 else ''} = {rate * 8 / 1e6:.1f} Mbit/s")
+    if crossing:
+        lines.append(f"  all links between hosts: {total * 8 / 1e6:.1f} Mbit/s (samples only; headers add well under 1 %)")
+    return lines
 
 
 def add_run_arguments(parser: argparse.ArgumentParser) -> None:

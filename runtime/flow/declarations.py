@@ -476,6 +476,7 @@ def read_tables(data: dict[str, Any], log: ProblemLog, registry: Registry, flow_
             links.append(link)
     hosts = read_hosts(data.get("hosts"), log)
     placed = {name: table.get("host") for name, table in blocks.items() if isinstance(table, dict)}
-    host_keys = check_placement(log, hosts, placed, options, flow_dir) if "hosts" not in data or hosts else None
+    declared_hosts = set(data["hosts"]) if isinstance(data.get("hosts"), dict) else set()
+    host_keys = check_placement(log, hosts, declared_hosts, placed, options, flow_dir)
     return Tables(meta=options, declarations=decls, links=links, claimed=reader.claimed, hosts=hosts,
                   host_keys=host_keys)

@@ -98,13 +98,14 @@ def read_hosts(data: Any, log: ProblemLog) -> dict[str, Host]:
     return hosts
 
 
-def check_placement(log: ProblemLog, hosts: dict[str, Host], placed: dict[str, Any], meta: dict[str, Any],
-                    flow_dir: Path) -> str | None:
+def check_placement(log: ProblemLog, hosts: dict[str, Host], declared: set[str], placed: dict[str, Any],
+                    meta: dict[str, Any], flow_dir: Path) -> str | None:
     """Every block names a declared host (when there are hosts) and none does otherwise; the hosts' keys
-    (``[flow] keys``) or ``[flow] insecure``. ``placed`` maps block names to their ``host`` values (None:
-    not given). Returns the key folder, resolved, or None."""
+    (``[flow] keys``) or ``[flow] insecure``. ``declared`` names every [hosts.NAME] table, read well or not
+    (a block on a host with problems of its own is not told the host is unknown); ``placed`` maps block
+    names to their ``host`` values (None: not given). Returns the key folder, resolved, or None."""
     keys, insecure = meta.get("keys"), meta.get("insecure")
-    if not hosts:
+    if not declared:
         for name, host in placed.items():
             if host is not None:
                 log.add(("blocks", name, "host"), "this flow declares no hosts; add [hosts.NAME] tables with an "
@@ -117,9 +118,9 @@ def check_placement(log: ProblemLog, hosts: dict[str, Host], placed: dict[str, A
         if host is None:
             log.add(("blocks", name), f"this flow runs on several hosts: say where the block runs, host = one of "
                     f"{known_names(hosts)}")
-        elif not isinstance(host, str) or host not in hosts:
+        elif not isinstance(host, str) or host not in declared:
             log.add(("blocks", name, "host"), f"no host named {toml_repr(host)}"
-                    f"{did_you_mean(host, hosts) if isinstance(host, str) else ''}; hosts: {known_names(hosts)}")
+                    f"{did_you_mean(host, declared) if isinstance(host, str) else ''}; hosts: {known_names(declared)}")
     if keys and insecure:
         log.add(("flow", "insecure"), "give keys (encrypted) or insecure = true (in the clear), not both")
         return None

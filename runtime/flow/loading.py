@@ -48,7 +48,7 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
         out = Path(output_dir) if output_dir else Path.cwd()
         instances, expanded = expand(log, decls, links, order, flow_path=path, output_dir=out, max_processes=limit)
         check_output_paths(log, instances, flow_path=path, output_dir=out)
-        if tables.hosts:
+        if tables.hosts and not log.problems:      # (a block on an unknown host has no ports)
             check_host_ports(log, tables.hosts, instances, expanded)
     continuing = {i.declared: i for i in instances.values() if i.policy.on_failure is OnFailure.CONTINUE
                   and any(link.target for links in i.outputs.values() for link in links)}

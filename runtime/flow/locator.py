@@ -73,8 +73,8 @@ class KeyLocator:
         table: tuple[str, ...] | None
         if path[0] == "links" and len(path) >= 2 and isinstance(path[1], int):
             table, rest, occurrence = ("links",), path[2:], path[1]
-        elif path[0] == "blocks" and len(path) >= 2:
-            table, rest, occurrence = ("blocks", str(path[1])), path[2:], 0
+        elif path[0] in ("blocks", "hosts") and len(path) >= 2:
+            table, rest, occurrence = (path[0], str(path[1])), path[2:], 0
         elif path[0] == "flow":
             table, rest, occurrence = ("flow",), path[1:], 0
         else:
