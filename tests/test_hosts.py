@@ -106,6 +106,8 @@ class Network:
                 self.prefix[host] = []
 
     def _namespaces(self) -> str | None:
+        if os.environ.get("BANDLOOM_TEST_LOOPBACK_HOSTS"):
+            return "BANDLOOM_TEST_LOOPBACK_HOSTS is set"
         if os.geteuid() != 0:
             return "not root"
         if shutil.which("ip") is None:
@@ -291,3 +293,61 @@ def test_kill_of_a_share_is_reported_by_the_others_with_exact_accounts(network, 
         assert x["delivered_samples"] > 0 and x["sent_samples"] > x["delivered_samples"] - 1
     assert_links_account(report(outs["left"]))
     print(f"\nhost right killed; the other shares ended {noticed:.1f} s later ({network.kind})")
+
+
+def test_ctrl_c_on_one_share_stops_every_share_and_nothing_is_lost(network, tmp_path):
+    """SIGINT to a share that only consumes: it says it is stopping, the source's host ends its stream, the
+    stream drains across the hosts, and every share ends with no sample lost; what crossed was taken whole."""
+    flow = write_flow(tmp_path, network, duration="600 s")
+    outs = {host: tmp_path / host for host in HOSTS}
+    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
+    written = outs["left"] / "channel-00.cf32"
+    deadline = time.monotonic() + 120
+    while not (written.exists() and written.stat().st_size > 1 << 20):
+        assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
+        time.sleep(0.2)
+    os.kill(processes["left"].pid, signal.SIGINT)
+    results = finish(processes, timeout=90)
+    assert results["left"][0] in (-signal.SIGINT, 128 + signal.SIGINT), results["left"][1]
+    assert results["antenna"][0] == 0 and results["right"][0] == 0, results
+    for host, (_, err) in results.items():
+        assert "verdict: no sample lost" in err, f"{host}:\n{err}"
+    sent = report(outs["antenna"])
+    assert sent["outcome"] == "interrupted"
+    assert_links_account(sent)
+    for x in sent["links"]:
+        if "crosses" in x:
+            assert x["sent_samples"] == x["delivered_samples"] == x["received_samples"] > 0, x
+    assert "host left was asked to stop" in results["antenna"][1]
+
+
+def walk_through_script() -> str:
+    """The shell commands of docs/hosts.md, "Try it on one machine", as written there."""
+    text = (Path(__file__).parent.parent / "docs" / "hosts.md").read_text()
+    part = text.split("## Try it on one machine", 1)[1]
+    return part.split("```sh\n", 1)[1].split("```", 1)[0]
+
+
+def test_the_walk_through_runs_as_written(network, tmp_path):
+    """docs/hosts.md's commands for one machine, run by bash from a copy of flows/: three shares in three
+    namespaces, each ending with no sample lost, writing what the one-machine run of the file writes."""
+    if network.kind != "namespaces":
+        pytest.skip("network namespaces cannot be made here (see the warning); the walk-through needs them")
+    (tmp_path / "flows").mkdir()
+    shutil.copy(Path(__file__).parent.parent / "flows" / "across-hosts.toml", tmp_path / "flows")
+    env = dict(os.environ, PATH=f"{Path(sys.executable).parent}{os.pathsep}{os.environ['PATH']}")
+    try:
+        done = subprocess.run(["bash", "-e", "-c", walk_through_script()], cwd=tmp_path, env=env, capture_output=True,
+                              text=True, timeout=300)
+    finally:
+        for ns in ("bl-mast", "bl-recorder", "bl-listener", "bl-switch"):
+            subprocess.run(["ip", "netns", "del", ns], capture_output=True)
+    assert done.returncode == 0, done.stderr
+    assert done.stderr.count("bandloom: verdict: no sample lost") == 3, done.stderr
+    alone = bandloom("run", "flows/across-hosts.toml", "--one-machine", "--out", "site", "--quiet", cwd=tmp_path)
+    assert alone.returncode == 0, alone.stderr
+    files = [f"iq/channel-{c:02d}.sigmf-data" for c in range(8)]
+    for name in files:
+        assert (tmp_path / "site-recorder" / name).read_bytes() == (tmp_path / "site" / name).read_bytes(), name
+    for name in ("audio/446.0250MHz.wav", "audio/446.1500MHz.wav"):
+        assert (tmp_path / "site-listener" / name).read_bytes() == (tmp_path / "site" / name).read_bytes(), name
