@@ -13,6 +13,13 @@ After a reconnect the endpoint sends first what the last connection had not
 acknowledged; messages that end at or before the rows already taken are
 skipped here (``duplicates``), as the protocol says.
 
+A gap (rows skipped before a message) is bounded by the time since the last
+message: at most :data:`GAP_SPEED_BOUND` times what the stream's sample rate
+fills in that time, and never less than :data:`MIN_GAP_BOUND` rows (a sender
+that reads a file runs faster than real time). A larger one is refused as a
+forged or corrupt header before it is counted, so an outside sender can
+neither inflate the counts nor make a writer fill a disk with zeros.
+
 Used twice: by :class:`EndpointInlet`, the receiving end of a link that comes
 from another host (the source's share serves it as an endpoint, see
 :mod:`.shares`), and by the ``endpoint-reader`` source block
@@ -21,6 +28,7 @@ from another host (the source's share serves it as an endpoint, see
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,8 +42,10 @@ from . import wire
 from .links import Inlet, LinkError, configure
 from .worker_spec import LinkSpec
 
-__all__ = ["EndpointClient", "EndpointInlet", "EndpointRefused", "Received", "secure_client"]
+__all__ = ["GAP_SPEED_BOUND", "MIN_GAP_BOUND", "EndpointClient", "EndpointInlet", "EndpointRefused", "Received", "secure_client"]
 
+GAP_SPEED_BOUND = 1000     # a gap may span at most this many times the rows its silence could hold
+MIN_GAP_BOUND = 1 << 24    # ... or this many rows, whichever is more
 HANDSHAKE_FAILED = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
                     | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
 
@@ -86,6 +96,7 @@ class EndpointClient:
         self.handshake_failures = 0
         self.handshakes = 0
         self._pending_ack: int | None = None
+        self._last_message = time.monotonic()
         self.sock = context.socket(zmq.DEALER)
         try:
             configure(self.sock, self.credit + 2)
@@ -154,7 +165,15 @@ class EndpointClient:
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}; "
                                  f"{self.label} expects {expect.sample_type} x {expect.width}")
         data = None if end else wire.decode_payload(header, frames[1].buffer)
+        now = time.monotonic()
+        if expect is not None and c.last_seq >= 0:
+            bound = max(MIN_GAP_BOUND, expect.sample_rate * (now - self._last_message) * GAP_SPEED_BOUND)
+            if header["first_index"] - c.next_index > bound:
+                raise wire.WireError(f"message {header['seq']} skips {header['first_index'] - c.next_index} rows "
+                                     f"{now - self._last_message:.3f} s after the last one; at {expect.sample_rate:g} "
+                                     f"samples/s no sender could have skipped that many (a forged or corrupt header)")
         gap = c.take(header)
+        self._last_message = now
         if end:
             self._request(ack=header["seq"])     # the endpoint waits for the end to be acknowledged
         else:

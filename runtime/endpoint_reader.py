@@ -7,12 +7,17 @@ messages ahead, checks each one as a link's receiving end does, and
 acknowledges each chunk once the flow has taken it, so the endpoint's run
 counts as delivered exactly what this flow took.
 
-Indices are the sender's: the first chunk starts at the absolute index of the
-first message received. A reader that joins late (or after samples were
-dropped at the endpoint) learns where it starts from that index; every row
-missing before a message, declared by the sender (``dropped``) or not, is
-counted here as a loss in the run's verdict and flagged downstream as a gap.
-After a reconnect, rows already taken are skipped, never repeated.
+Indices: the flow's stream starts at the first message this reader takes
+(index 0 here), whose index in the sender's stream the report gives ("joined
+at index N"): a reader that joins a long-running stream late does not fill
+what came before it with zeros. Rows missing before that first message are
+counted as missing in the run's verdict; every later gap, declared by the
+sender (``dropped``) or not, is counted too and flagged downstream as a gap
+in absolute time (writers zero-fill it). A gap larger than the silence before
+it could hold is refused as a forged header (see
+:class:`~.endpoint_client.EndpointClient`), so an outside sender cannot make
+a writer fill a disk with zeros. After a reconnect, rows
+already taken are skipped, never repeated.
 """
 
 from __future__ import annotations
@@ -82,6 +87,7 @@ class EndpointReader(Block):
         self.started_at = 0.0
         self.last_message = 0.0
         self.first = True
+        self.origin = 0            # the sender's index of this flow's first sample
         self.final_index: int | None = None
         self.ended = False
         self.closed = False
@@ -113,17 +119,20 @@ class EndpointReader(Block):
         if got is None:
             self._check_waiting(client)
             return {}
-        self.last_message = time.monotonic()
+        now, gap = time.monotonic(), got.gap
         if self.first:
             self._check_stream(got.header)
             self.first = False
+            self.origin = got.header["first_index"]      # this flow's index 0: nothing before it is zero-filled
+            gap = 0
+        self.last_message = now
         if got.end:
             self.ended = True
-            self.final_index = got.header["first_index"]
+            self.final_index = got.header["first_index"] - self.origin
             return None
         assert got.data is not None
-        chunk = Chunk(got.data, got.header["first_index"], dropped=got.gap,
-                      discontinuity=bool(got.gap or got.header["flags"] & wire.FLAG_DISCONTINUITY))
+        chunk = Chunk(got.data, got.header["first_index"] - self.origin, dropped=gap,
+                      discontinuity=bool(gap or got.header["flags"] & wire.FLAG_DISCONTINUITY))
         return {"samples": chunk}
 
     def _check_waiting(self, client: EndpointClient) -> None:
@@ -166,7 +175,8 @@ class EndpointReader(Block):
             return []
         skipped = f"; {self.client.duplicates} messages sent again after a reconnect skipped" \
             if self.client and self.client.duplicates else ""
-        return [f"took {c.rows} samples from {self.params['endpoint']}, indices up to {c.next_index}{skipped}"]
+        joined = f", joined at index {self.origin}" if self.origin else ""
+        return [f"took {c.rows} samples from {self.params['endpoint']}, indices up to {c.next_index}{joined}{skipped}"]
 
     def close(self) -> None:
         if self.client is not None and not self.closed:

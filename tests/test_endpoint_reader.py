@@ -127,3 +127,77 @@ def test_a_reader_with_the_wrong_keys_fails_naming_the_endpoint(tmp_path):
     assert done.returncode == 1
     assert f"tcp://127.0.0.1:{port} refused our keys" in done.stderr
     assert "Traceback" not in done.stderr
+
+
+def serve_by_hand(port, messages, ready):
+    """An outside sender written from docs/wire.md: a ROUTER that waits for a consumer's first request, sends
+    ``messages`` ((first_index, rows, flags) each, seq counting up), then keeps answering until told bye."""
+    import zmq
+    from bandloom.runtime import wire
+
+    ctx = zmq.Context()
+    sock = ctx.socket(zmq.ROUTER)
+    sock.bind(f"tcp://127.0.0.1:{port}")
+    ready.set()
+    try:
+        if not sock.poll(30_000):
+            return
+        identity, _ = sock.recv_multipart()
+        for seq, (first, rows, flags) in enumerate(messages):
+            data = np.full(rows, 0.5 + 0.25j, np.complex64)
+            header = wire.encode_header(stream="by hand", seq=seq, first_index=first, count=rows, width=1,
+                                        sample_type="cf32", sample_rate=RATE, centre_frequency=0.0, flags=flags,
+                                        dropped=0)
+            sock.send_multipart([identity, header, data.tobytes()])
+        while sock.poll(5_000):
+            sock.recv_multipart()
+    finally:
+        sock.close(linger=0)
+        ctx.term()
+
+
+def run_reader_against(tmp_path, messages):
+    import threading
+
+    port = free_port()
+    ready = threading.Event()
+    sender = threading.Thread(target=serve_by_hand, args=(port, messages, ready), daemon=True)
+    sender.start()
+    ready.wait(10)
+    flow = read_flow(tmp_path, port)
+    done = bandloom("run", flow, "--out", tmp_path, "--report", tmp_path / "report.json")
+    sender.join(15)
+    report = json.loads((tmp_path / "report.json").read_text()) if (tmp_path / "report.json").exists() else None
+    return done, report
+
+
+def test_a_reader_joining_a_long_stream_starts_its_own_at_zero_and_counts_what_came_before(tmp_path):
+    """The first message the reader takes is at index 10**9 of the sender's stream: the flow's stream starts
+    there (no gigasample of zeros in the file), the report says where it joined, a later declared gap is
+    zero-filled in place, and every row missing is counted in the verdict."""
+    start = 10 ** 9
+    done, report = run_reader_against(tmp_path, [(start, 1000, 0), (start + 1500, 1000, wire_discontinuity()),
+                                                 (start + 2500, 0, 1)])
+    assert done.returncode == 3, done.stderr
+    got = np.fromfile(tmp_path / "got.cf32", np.complex64)
+    assert len(got) == 2500 and np.count_nonzero(got == 0) == 500
+    loss = next(x for x in report["losses"] if x["where"] == "block remote")
+    assert loss["samples"] == start + 500
+    assert f"joined at index {start}" in report["blocks"]["remote"]["report"][0]
+
+
+def test_a_forged_gap_is_refused_before_anything_is_zero_filled(tmp_path):
+    """A second message 2**60 rows on, a moment after the first: no sender could have skipped that many; the
+    reader fails naming the message, the file holds at most what came before it, and the 1000 rows taken are
+    each written or counted lost."""
+    done, report = run_reader_against(tmp_path, [(0, 1000, 0), (1 << 60, 1000, wire_discontinuity())])
+    assert done.returncode == 1, done.stderr
+    assert "a forged or corrupt header" in done.stderr and "Traceback" not in done.stderr
+    written = (tmp_path / "got.cf32").stat().st_size // 8
+    assert written <= 1000 and report["outcome"] == "failed"
+    assert written + report["lost_samples"] == 1000, report["losses"]
+
+
+def wire_discontinuity():
+    from bandloom.runtime import wire
+    return wire.FLAG_DISCONTINUITY
