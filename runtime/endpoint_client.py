@@ -28,6 +28,7 @@ from another host (the source's share serves it as an endpoint, see
 
 from __future__ import annotations
 
+import os
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -95,12 +96,14 @@ class EndpointClient:
         self.duplicates = 0
         self.handshake_failures = 0
         self.handshakes = 0
+        self.reconnects = 0
         self._pending_ack: int | None = None
         self._last_message = time.monotonic()
         self.sock = context.socket(zmq.DEALER)
         try:
             configure(self.sock, self.credit + 2)
             self.sock.setsockopt(zmq.LINGER, 1000)       # a last ack or bye may still go out
+            self.sock.routing_id = os.urandom(16)          # the same consumer after a reconnect, to the endpoint
             if keys:
                 secure_client(self.sock, keys)
             self.monitor = self.sock.get_monitor_socket(HANDSHAKE_FAILED | zmq.EVENT_HANDSHAKE_SUCCEEDED)
@@ -117,11 +120,20 @@ class EndpointClient:
             pass            # the connection is not up: ZeroMQ keeps one request queued, the endpoint asks nothing more
 
     def read_events(self) -> None:
-        """Count handshakes that succeeded and failed (a wrong key: see :attr:`keys_refused`)."""
+        """Count handshakes that succeeded and failed (a wrong key: see :attr:`keys_refused`). A handshake
+        after the first is a reconnect, under the same routing id: what was taken is acknowledged, the old
+        connection is let go with ``bye`` (so the endpoint sends again, first, whatever it sent that did not
+        arrive), and credit is asked anew."""
         while self.monitor.poll(0):
             event = recv_monitor_message(self.monitor)["event"]
             if event == zmq.EVENT_HANDSHAKE_SUCCEEDED:
                 self.handshakes += 1
+                if self.handshakes > 1:
+                    self.reconnects += 1
+                    last = self.continuity.last_seq
+                    self._pending_ack = None
+                    self._request(ack=last if last >= 0 else None, bye=True)
+                    self._request(credit=self.credit)
             elif event & HANDSHAKE_FAILED:
                 self.handshake_failures += 1
 
@@ -143,10 +155,12 @@ class EndpointClient:
         Raises WireError for a message that breaks the protocol, EndpointRefused when turned away."""
         self.acknowledge()
         if timeout_ms and not self.sock.poll(timeout_ms):
+            self.read_events()
             return None
         try:
             frames = self.sock.recv_multipart(zmq.NOBLOCK, copy=False)
         except zmq.Again:
+            self.read_events()
             return None
         if len(frames) != 2:
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")

@@ -75,6 +75,7 @@ class EndpointOutlet(Outlet):
 
         def prepare(sock: zmq.Socket) -> object:
             sock.setsockopt(zmq.ROUTER_MANDATORY, 1)      # a send to a consumer that is gone fails, not vanishes
+            sock.setsockopt(zmq.ROUTER_HANDOVER, 1)       # a consumer that reconnects under its id takes over
             sock.setsockopt(zmq.SNDHWM, spec.queue + 2)   # credit keeps what is outstanding below this
             return secure_server(sock, keys, context) if keys else None
 

@@ -55,6 +55,10 @@ def _load(args: argparse.Namespace, log: TextIO) -> Flow | None:
                 print(f"bandloom: warning: {flow.path}: {format_key_path(link.where)}: {link.endpoint} sends samples "
                       f"in the clear, unauthenticated, to any program on any machine that can reach it "
                       f"(insecure = true); use keys = \"FOLDER\" unless the network is yours alone", file=log)
+        if flow.hosts_insecure:
+            print(f"bandloom: warning: {flow.path}: [flow] insecure = true: samples cross between hosts in the "
+                  f"clear, unauthenticated; anyone on the network can read them or feed a host; use keys = \"FOLDER\" "
+                  f"unless the network is yours alone", file=log)
         return flow
     except FlowErrors as errors:
         for problem in errors.problems:
@@ -200,10 +204,6 @@ def _run_checked(args: argparse.Namespace, flow: Flow, launcher: Launcher, log: 
         print(f"bandloom: {problem}", file=log)
         return EXIT_FAILED
     here = getattr(args, "host", None)
-    if flow.hosts_insecure and here:
-        print(f"bandloom: warning: {flow.path}: [flow] insecure = true: samples cross between hosts in the clear, "
-              f"unauthenticated; anyone on the network can read them or feed this host; use keys = \"FOLDER\" unless "
-              f"the network is yours alone", file=log)
     supervisor = Supervisor(flow, output_dir=output_dir, quiet=args.quiet, log=log, drain_seconds=args.drain_time,
                             launcher=launcher, here=here, wait_for_hosts=getattr(args, "wait_for_hosts", WAIT_FOR_HOSTS),
                             digest=flow_digest(flow.path, getattr(args, "set", None) or []) if here else "")

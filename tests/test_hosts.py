@@ -351,3 +351,15 @@ def test_the_walk_through_runs_as_written(network, tmp_path):
         assert (tmp_path / "site-recorder" / name).read_bytes() == (tmp_path / "site" / name).read_bytes(), name
     for name in ("audio/446.0250MHz.wav", "audio/446.1500MHz.wav"):
         assert (tmp_path / "site-listener" / name).read_bytes() == (tmp_path / "site" / name).read_bytes(), name
+
+
+def test_links_between_hosts_in_the_clear_are_warned_about(tmp_path):
+    """[flow] insecure = true instead of keys: check (and every share's run) says loudly what that means."""
+    text = FLOW.format(duration="1 s", antenna="10.0.0.1", left="10.0.0.2", right="10.0.0.3")
+    path = tmp_path / "clear.toml"
+    path.write_text(text.replace('keys = "keys"', "insecure = true"))
+    done = bandloom("check", path)
+    assert done.returncode == 0, done.stderr
+    assert "warning" in done.stderr and "in the clear, unauthenticated" in done.stderr
+    done = bandloom("run", path, "--host", "nowhere")
+    assert done.returncode == 1 and "--host 'nowhere' is not a host of" in done.stderr
