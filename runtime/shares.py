@@ -41,7 +41,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 from enum import Enum
 from pathlib import Path
 from typing import Any
@@ -131,9 +131,14 @@ class ShareStatus:
             blocks = {}
             for name, view in values["blocks"].items():
                 blocks[str(name)] = BlockView(
-                    state=BlockState(view["state"]), pid=int(view["pid"]),
-                    outputs={int(k): OutletStats(**v) for k, v in view["outputs"].items()},
-                    inputs={int(k): InletStats(**v) for k, v in view["inputs"].items()})
+                    state=BlockState(view["state"]), pid=_whole(view["pid"]),
+                    outputs={_whole(k): _counters(OutletStats, v) for k, v in view["outputs"].items()},
+                    inputs={_whole(k): _counters(InletStats, v) for k, v in view["inputs"].items()})
+            for key in ("lost_samples", "lost_samples_not_accepted"):
+                values[key] = _whole(values.get(key, 0))
+            for key in ("host", "flow_digest", "reason", "outcome"):
+                if not isinstance(values.get(key, ""), str):
+                    raise ValueError(f"{key} is not text")
             values["blocks"] = blocks
             status = cls(**values)
         except (TypeError, ValueError, KeyError, AttributeError, msgpack.UnpackException) as error:
@@ -142,6 +147,35 @@ class ShareStatus:
         if status.host != sender:
             raise ShareError(f"host {sender}: its status says it is host {status.host!r}")
         return status
+
+
+def _whole(value: Any) -> int:
+    """A whole number from a peer, or ValueError (True and 1.5 are not)."""
+    if isinstance(value, bool) or not isinstance(value, int) or not -(1 << 62) <= value < 1 << 62:
+        raise ValueError(f"{value!r} is not a whole number")
+    return value
+
+
+def _counters(kind: type[OutletStats] | type[InletStats], values: Any) -> Any:
+    """Counters of one end of a link from a peer: only the fields ``kind`` has, each of the type its
+    default has (a count, seconds, or nothing where None is allowed)."""
+    if not isinstance(values, dict):
+        raise ValueError("counters are not a map")
+    checked: dict[str, Any] = {}
+    for f in fields(kind):
+        if f.name not in values:
+            continue
+        value, default = values[f.name], f.default
+        if value is None and default is None:
+            checked[f.name] = None
+        elif isinstance(default, float) and isinstance(value, (int, float)) and not isinstance(value, bool):
+            checked[f.name] = float(value)
+        else:
+            checked[f.name] = _whole(value)
+    unknown = set(values) - {f.name for f in fields(kind)}
+    if unknown:
+        raise ValueError(f"unknown counters {sorted(unknown)[:3]}")
+    return kind(**checked)
 
 
 def flow_digest(path: str | Path, overrides: Sequence[str] = ()) -> str:

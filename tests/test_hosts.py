@@ -262,16 +262,26 @@ def test_a_missing_share_times_out_naming_it(network, tmp_path):
         assert "verdict: no sample lost" in err
 
 
-def test_kill_of_a_share_is_reported_by_the_others_with_exact_accounts(network, tmp_path, busy_machine):
+def start_long_run(network: Network, tmp_path: Path, watched: Path) -> tuple[dict, dict]:
+    """Three shares of a 600 s flow, returned (outputs, processes) once ``watched`` (a file below the output
+    folders) holds 1 MiB: samples are flowing between the hosts."""
     flow = write_flow(tmp_path, network, duration="600 s")
     outs = {host: tmp_path / host for host in HOSTS}
     processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
-    written = outs["right"] / "channel-04.cf32"
+    written = tmp_path / watched
     deadline = time.monotonic() + 120
     while not (written.exists() and written.stat().st_size > 1 << 20):
-        assert time.monotonic() < deadline, "no samples reached host right"
+        assert time.monotonic() < deadline, f"no samples reached {watched}"
         assert all(p.poll() is None for p in processes.values())
         time.sleep(0.2)
+    return outs, processes
+
+
+def test_kill_of_a_share_is_reported_by_the_others_with_exact_accounts(network, tmp_path, busy_machine):
+    """kill -9 of host right's share (its supervisor, launcher and workers), beside two CPU-bound processes:
+    the other shares notice, abort and fail, naming it; on every link, sent = acknowledged or received + in
+    flight, and what was on its way to host right is exactly what the verdict counts lost there."""
+    outs, processes = start_long_run(network, tmp_path, Path("right") / "channel-04.cf32")
     os.killpg(processes["right"].pid, signal.SIGKILL)           # the share, its launcher and its workers
     killed = time.monotonic()
     results = finish({h: p for h, p in processes.items() if h != "right"}, timeout=60)
@@ -298,14 +308,7 @@ def test_kill_of_a_share_is_reported_by_the_others_with_exact_accounts(network, 
 def test_ctrl_c_on_one_share_stops_every_share_and_nothing_is_lost(network, tmp_path):
     """SIGINT to a share that only consumes: it says it is stopping, the source's host ends its stream, the
     stream drains across the hosts, and every share ends with no sample lost; what crossed was taken whole."""
-    flow = write_flow(tmp_path, network, duration="600 s")
-    outs = {host: tmp_path / host for host in HOSTS}
-    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
-    written = outs["left"] / "channel-00.cf32"
-    deadline = time.monotonic() + 120
-    while not (written.exists() and written.stat().st_size > 1 << 20):
-        assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
-        time.sleep(0.2)
+    outs, processes = start_long_run(network, tmp_path, Path("left") / "channel-00.cf32")
     os.kill(processes["left"].pid, signal.SIGINT)
     results = finish(processes, timeout=90)
     assert results["left"][0] in (-signal.SIGINT, 128 + signal.SIGINT), results["left"][1]

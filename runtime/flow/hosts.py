@@ -121,6 +121,11 @@ def check_placement(log: ProblemLog, hosts: dict[str, Host], declared: set[str],
         elif not isinstance(host, str) or host not in declared:
             log.add(("blocks", name, "host"), f"no host named {toml_repr(host)}"
                     f"{did_you_mean(host, declared) if isinstance(host, str) else ''}; hosts: {known_names(declared)}")
+    used = {host for host in placed.values() if isinstance(host, str)}
+    for name in hosts if used <= set(hosts) else ():        # (a misspelt host is the problem, not an idle one)
+        if name not in used:
+            log.add(("hosts", name), f"no block runs on host {name}; place a block there (host = \"{name}\") or "
+                    f"leave the host out")
     if keys and insecure:
         log.add(("flow", "insecure"), "give keys (encrypted) or insecure = true (in the clear), not both")
         return None
