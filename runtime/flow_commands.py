@@ -228,7 +228,9 @@ def _run_checked(args: argparse.Namespace, flow: Flow, launcher: Launcher, log: 
     summary = supervisor.summary(accept_loss=args.accept_loss)
     print_summary(summary, supervisor.failures(), log, quiet=args.quiet)
     if args.report:
-        Path(args.report).write_text(json.dumps(summary, indent=2) + "\n")
+        report = Path(args.report)
+        report.parent.mkdir(parents=True, exist_ok=True)      # (a missing folder must not lose the summary)
+        report.write_text(json.dumps(summary, indent=2) + "\n")
     if outcome is RunOutcome.INTERRUPTED and (supervisor.stop_signal or not here):
         raise Interrupted(supervisor.stop_signal or signal.SIGINT)
     others = summary.get("other_hosts", {}).values()

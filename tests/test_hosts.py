@@ -23,7 +23,7 @@ import warnings
 from pathlib import Path
 
 import pytest
-from runner import bandloom
+from runner import bandloom, worker_processes
 
 FLOW = """
 [flow]
@@ -322,6 +322,37 @@ def test_ctrl_c_on_one_share_stops_every_share_and_nothing_is_lost(network, tmp_
         if "crosses" in x:
             assert x["sent_samples"] == x["delivered_samples"] == x["received_samples"] > 0, x
     assert "host left was asked to stop" in results["antenna"][1]
+
+
+def test_a_restarted_block_on_another_host_loses_nothing(network, tmp_path):
+    """A writer on host right with on_failure = "restart" is killed mid-stream: its share starts a new one,
+    which connects to the link's endpoint again; what the dead one had not acknowledged is sent again, what
+    its file already holds is skipped, and the file equals the one-machine run's, byte for byte."""
+    flow = write_flow(tmp_path, network, duration="6 s")
+    text = flow.read_text().replace('[blocks.high]\ntype = "iq-writer"', '[blocks.high]\ntype = "iq-writer"\n'
+                                    'on_failure = "restart"')
+    flow.write_text(text.replace('seed = 11', 'seed = 11\npace = true'))
+    alone = tmp_path / "one-machine"
+    done = bandloom("run", flow, "--one-machine", "--out", alone, "--quiet")
+    assert done.returncode == 0, done.stderr
+    outs = {host: tmp_path / host for host in HOSTS}
+    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
+    deadline = time.monotonic() + 60
+    while True:
+        workers = {name: pid for pid, (name, _) in worker_processes(below=processes["right"].pid).items()}
+        written = outs["right"] / "channel-05.cf32"
+        if "high[5]" in workers and written.exists() and written.stat().st_size > 1 << 20:
+            break
+        assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
+        time.sleep(0.1)
+    os.kill(workers["high[5]"], signal.SIGKILL)
+    results = finish(processes)
+    for host, (code, err) in results.items():
+        assert code == 0 and "verdict: no sample lost" in err, f"{host}:\n{err}"
+    assert "restarted after" in results["right"][1]
+    assert (outs["right"] / "channel-05.cf32").read_bytes() == (alone / "channel-05.cf32").read_bytes()
+    link = next(x for x in report(outs["antenna"])["links"] if x["link"].endswith("high[5].samples"))
+    assert link["consumers"] == 2 and link["delivered_samples"] == link["sent_samples"]
 
 
 def walk_through_script() -> str:
