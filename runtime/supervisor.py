@@ -11,6 +11,12 @@ they would send it), starts a new process after the restart delay, whose
 links resume where the last one's stood, and attaches it again;
 ``continue`` leaves the block down and the rest running, and the run fails
 at its end. What the run did is told by :mod:`.run_report`.
+
+A flow placed on several hosts is run one share per host (``here``): this
+supervisor starts and watches only the blocks placed on its host, and talks
+to the other hosts' supervisors through :mod:`.shares` to start, stop and
+abort together; its summary shows the other hosts' blocks at the ends of the
+links that cross, as their shares last told them.
 """
 
 from __future__ import annotations
