@@ -98,6 +98,9 @@ class EndpointReader(Block):
                                       centre_frequency=p["centre_frequency"])}
 
     def begin(self) -> None:
+        if self.params["insecure"]:
+            self.warn(f"{self.params['endpoint']} is read in the clear, unauthenticated (insecure = true): anyone on "
+                      f"the network can read the stream or feed this flow")
         self.context_zmq = zmq.Context()
         stream = self.output_streams({})["samples"]
         self.client = EndpointClient(self.context_zmq, self.params["endpoint"], label=f"block {self.context.name}",

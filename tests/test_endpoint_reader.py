@@ -201,3 +201,17 @@ def test_a_forged_gap_is_refused_before_anything_is_zero_filled(tmp_path):
 def wire_discontinuity():
     from bandloom.runtime import wire
     return wire.FLAG_DISCONTINUITY
+
+
+def test_a_reader_refuses_keys_other_local_users_can_read(tmp_path):
+    """A client key folder open to other users (mode 0755, a secret 0644) is refused by check, naming the file
+    and the chmod that mends it: whoever reads the secret can impersonate this flow to the endpoint."""
+    import os
+
+    assert bandloom("keys", tmp_path / "keys").returncode == 0
+    flow = read_flow(tmp_path, free_port(), keys=tmp_path / "keys")
+    os.chmod(tmp_path / "keys" / "client.key_secret", 0o644)
+    done = bandloom("check", flow)
+    assert done.returncode == 1
+    assert "client.key_secret can be read by other local users (mode 0644); run chmod 600" in done.stderr
+    assert "Traceback" not in done.stderr
