@@ -161,7 +161,6 @@ class Supervisor:
         self.peer_trouble = ""        # why the run stopped because of another host
         self.stopping_since: float | None = None
         self.aborting_since: float | None = None
-        self.peers_settled = True
         self.launcher = launcher      # forks the workers (see .launcher); one of our own when not given
         self.drain_seconds = drain_seconds
         self.output_dir = output_dir
@@ -225,7 +224,6 @@ class Supervisor:
         try:
             if self.here is not None:
                 self.network = ShareNetwork(self.flow, self.here, digest=self.digest, context=context)
-                self.peers_settled = False
             if self.launcher is None:
                 self.launcher = Launcher()
             self.launcher.preload(sorted({inst.type_name for inst in self.local.values()}))
@@ -488,7 +486,6 @@ class Supervisor:
                          f"this one; their last counts are shown")
                 break
             time.sleep(0.05)
-        self.peers_settled = True
         network.publish(final, time.monotonic() + HEARTBEAT_SECONDS)     # once more, for a peer that joined late
 
     def remote_records(self) -> dict[str, BlockRecord]:
