@@ -190,14 +190,15 @@ class EndpointOutlet(Outlet):
             return False
         self.waiting.append(_Message(seq, rows, frames))
         self._pump()
-        while len(self.waiting) > self.spec.queue:
+        while len(self.waiting) > self.spec.queue and self.attached:     # (detached: its consumer is left down)
             self._wait_a_turn()
         return True
 
     def end(self, final_index: int | None = None) -> None:
-        """Send end of stream and wait until a consumer has acknowledged everything, end included."""
+        """Send end of stream and wait until a consumer has acknowledged everything, end included (unless the
+        consumer, a block on another host, is left down: what it did not acknowledge is counted in flight)."""
         super().end(final_index)
-        while self.waiting or self.unacked:
+        while (self.waiting or self.unacked) and self.attached:
             self._wait_a_turn()
 
     def stats(self) -> OutletStats:

@@ -81,11 +81,13 @@ class ShareState(str, Enum):
 
 @dataclass(frozen=True, kw_only=True)
 class BlockView:
-    """One block of a share as its peers see it: its state, its process, and the counters of its links
-    that cross to other hosts (by link id)."""
+    """One block of a share as its peers see it: its state, its process, whether it is left down
+    (``on_failure = "continue"``: its producers on other hosts drop and count what they would send it,
+    rather than wait for ever), and the counters of its links that cross to other hosts (by link id)."""
 
     state: BlockState
     pid: int = 0
+    left_down: bool = False
     outputs: dict[int, OutletStats] = field(default_factory=dict)
     inputs: dict[int, InletStats] = field(default_factory=dict)
 
@@ -131,7 +133,7 @@ class ShareStatus:
             blocks = {}
             for name, view in values["blocks"].items():
                 blocks[str(name)] = BlockView(
-                    state=BlockState(view["state"]), pid=_whole(view["pid"]),
+                    state=BlockState(view["state"]), pid=_whole(view["pid"]), left_down=view["left_down"] is True,
                     outputs={_whole(k): _counters(OutletStats, v) for k, v in view["outputs"].items()},
                     inputs={_whole(k): _counters(InletStats, v) for k, v in view["inputs"].items()})
             for key in ("lost_samples", "lost_samples_not_accepted"):
@@ -378,6 +380,10 @@ class ShareNetwork:
         """Every peer has finished, or is lost (the end of this share's wait after its own finish)."""
         self.trouble(now)
         return all(p.state is ShareState.FINISHED or p.lost or p.status is None for p in self.peers.values())
+
+    def left_down(self) -> list[str]:
+        """Blocks of other hosts that their shares have left down."""
+        return [name for name, (_, view) in self.views().items() if view.left_down]
 
     def views(self) -> Mapping[str, tuple[str, BlockView]]:
         """Every remote block heard of: name -> (host, its view)."""

@@ -310,6 +310,8 @@ class Supervisor:
                 self.tell(control, now, Control(ControlWord.GO).encode())
             for name in self.releasable():
                 self.tell(control, now, Control(ControlWord.RELEASE, name).encode())
+            for name in self.network.left_down() if self.network is not None else ():
+                self.tell(control, now, Control(ControlWord.DETACH, name).encode())    # left down on its host
             for record in self.blocks.values():
                 if record.down:
                     self.tell(control, now, Control(ControlWord.DETACH, record.name).encode())
@@ -424,7 +426,7 @@ class Supervisor:
         for name, record in self.blocks.items():
             totals = record.totals
             blocks[name] = BlockView(
-                state=record.state, pid=record.pid,
+                state=record.state, pid=record.pid, left_down=record.left_down,
                 outputs={k: v for k, v in (totals.outputs if totals else {}).items() if k in crossing},
                 inputs={k: v for k, v in (totals.inputs if totals else {}).items() if k in crossing})
         if final:
@@ -496,7 +498,8 @@ class Supervisor:
         for name, (_, view) in self.network.views().items():
             if name in self.blocks:
                 continue
-            record = BlockRecord(name, RemoteProcess(view.pid), state=view.state)
+            record = BlockRecord(name, RemoteProcess(view.pid), state=view.state, left_down=view.left_down,
+                                 policy=self.flow.instances[name].policy if name in self.flow.instances else FailurePolicy())
             record.last = StatsMessage(event=WorkerEvent.STATS, block=name, pid=view.pid, time=0.0,
                                        inputs=dict(view.inputs), outputs=dict(view.outputs))
             records[name] = record

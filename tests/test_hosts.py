@@ -355,6 +355,41 @@ def test_a_restarted_block_on_another_host_loses_nothing(network, tmp_path):
     assert link["consumers"] == 2 and link["delivered_samples"] == link["sent_samples"]
 
 
+def test_a_block_left_down_on_another_host_does_not_stall_its_producer(network, tmp_path):
+    """A writer on host right with on_failure = "continue" is killed: its share leaves it down and says so;
+    the channelizer on host antenna stops sending to it (dropping and counting, as for a local consumer left
+    down) instead of waiting for ever, the rest of the flow runs to its end, and every share fails, with the
+    rows that never reached the writer counted in antenna's verdict."""
+    flow = write_flow(tmp_path, network, duration="6 s")
+    text = flow.read_text().replace('[blocks.high]\ntype = "iq-writer"', '[blocks.high]\ntype = "iq-writer"\n'
+                                    'on_failure = "continue"')
+    flow.write_text(text.replace('seed = 11', 'seed = 11\npace = true'))
+    outs = {host: tmp_path / host for host in HOSTS}
+    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
+    deadline = time.monotonic() + 60
+    while True:
+        workers = {name: pid for pid, (name, _) in worker_processes(below=processes["right"].pid).items()}
+        written = outs["right"] / "channel-05.cf32"
+        if "high[5]" in workers and written.exists() and written.stat().st_size > 1 << 20:
+            break
+        assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
+        time.sleep(0.1)
+    os.kill(workers["high[5]"], signal.SIGKILL)
+    results = finish(processes, timeout=60)
+    for host, (code, err) in results.items():
+        assert code == 1, f"{host}:\n{err}"
+    assert "left down" in results["right"][1]
+    sent = report(outs["antenna"])
+    assert_links_account(sent)
+    link = next(x for x in sent["links"] if x["link"].endswith("high[5].samples"))
+    assert link["dropped_while_down_samples"] > 0
+    assert link["sent_samples"] + link["dropped_samples"] + link["held_samples"] == 6 * 200_000
+    others = [x for x in sent["links"] if "crosses" in x and x is not link]
+    assert all(x["delivered_samples"] == x["sent_samples"] == 6 * 200_000 for x in others)
+    why = [x["why"] for x in sent["losses"] if "high[5]" in x["where"]]
+    assert any('dropped while high[5] was down (on_failure = "continue")' in w for w in why), why
+
+
 def walk_through_script() -> str:
     """The shell commands of docs/hosts.md, "Try it on one machine", as written there."""
     text = (Path(__file__).parent.parent / "docs" / "hosts.md").read_text()
