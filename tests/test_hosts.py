@@ -324,19 +324,17 @@ def test_ctrl_c_on_one_share_stops_every_share_and_nothing_is_lost(network, tmp_
     assert "host left was asked to stop" in results["antenna"][1]
 
 
-def test_a_restarted_block_on_another_host_loses_nothing(network, tmp_path):
-    """A writer on host right with on_failure = "restart" is killed mid-stream: its share starts a new one,
-    which connects to the link's endpoint again; what the dead one had not acknowledged is sent again, what
-    its file already holds is skipped, and the file equals the one-machine run's, byte for byte."""
+def paced_flow_with_policy(network: Network, tmp_path: Path, on_failure: str) -> Path:
+    """The three-host flow, 6 s paced, its writers on host right with the given on_failure."""
     flow = write_flow(tmp_path, network, duration="6 s")
     text = flow.read_text().replace('[blocks.high]\ntype = "iq-writer"', '[blocks.high]\ntype = "iq-writer"\n'
-                                    'on_failure = "restart"')
+                                    f'on_failure = "{on_failure}"')
     flow.write_text(text.replace('seed = 11', 'seed = 11\npace = true'))
-    alone = tmp_path / "one-machine"
-    done = bandloom("run", flow, "--one-machine", "--out", alone, "--quiet")
-    assert done.returncode == 0, done.stderr
-    outs = {host: tmp_path / host for host in HOSTS}
-    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
+    return flow
+
+
+def kill_writer_on_right(processes: dict[str, subprocess.Popen], outs: dict[str, Path]) -> None:
+    """kill -9 the worker of high[5] on host right once its file holds 1 MiB."""
     deadline = time.monotonic() + 60
     while True:
         workers = {name: pid for pid, (name, _) in worker_processes(below=processes["right"].pid).items()}
@@ -346,6 +344,19 @@ def test_a_restarted_block_on_another_host_loses_nothing(network, tmp_path):
         assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
         time.sleep(0.1)
     os.kill(workers["high[5]"], signal.SIGKILL)
+
+
+def test_a_restarted_block_on_another_host_loses_nothing(network, tmp_path):
+    """A writer on host right with on_failure = "restart" is killed mid-stream: its share starts a new one,
+    which connects to the link's endpoint again; what the dead one had not acknowledged is sent again, what
+    its file already holds is skipped, and the file equals the one-machine run's, byte for byte."""
+    flow = paced_flow_with_policy(network, tmp_path, "restart")
+    alone = tmp_path / "one-machine"
+    done = bandloom("run", flow, "--one-machine", "--out", alone, "--quiet")
+    assert done.returncode == 0, done.stderr
+    outs = {host: tmp_path / host for host in HOSTS}
+    processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
+    kill_writer_on_right(processes, outs)
     results = finish(processes)
     for host, (code, err) in results.items():
         assert code == 0 and "verdict: no sample lost" in err, f"{host}:\n{err}"
@@ -360,21 +371,10 @@ def test_a_block_left_down_on_another_host_does_not_stall_its_producer(network, 
     the channelizer on host antenna stops sending to it (dropping and counting, as for a local consumer left
     down) instead of waiting for ever, the rest of the flow runs to its end, and every share fails, with the
     rows that never reached the writer counted in antenna's verdict."""
-    flow = write_flow(tmp_path, network, duration="6 s")
-    text = flow.read_text().replace('[blocks.high]\ntype = "iq-writer"', '[blocks.high]\ntype = "iq-writer"\n'
-                                    'on_failure = "continue"')
-    flow.write_text(text.replace('seed = 11', 'seed = 11\npace = true'))
+    flow = paced_flow_with_policy(network, tmp_path, "continue")
     outs = {host: tmp_path / host for host in HOSTS}
     processes = {host: start_share(network, host, flow, outs[host]) for host in HOSTS}
-    deadline = time.monotonic() + 60
-    while True:
-        workers = {name: pid for pid, (name, _) in worker_processes(below=processes["right"].pid).items()}
-        written = outs["right"] / "channel-05.cf32"
-        if "high[5]" in workers and written.exists() and written.stat().st_size > 1 << 20:
-            break
-        assert time.monotonic() < deadline and all(p.poll() is None for p in processes.values())
-        time.sleep(0.1)
-    os.kill(workers["high[5]"], signal.SIGKILL)
+    kill_writer_on_right(processes, outs)
     results = finish(processes, timeout=60)
     for host, (code, err) in results.items():
         assert code == 1, f"{host}:\n{err}"
