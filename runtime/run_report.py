@@ -62,12 +62,15 @@ def link_counts(flow: Flow, blocks: Mapping[str, BlockRecord]) -> list[tuple[Lin
 
 
 def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, seconds: float,
-              accept_loss: bool = False, local: Collection[str] | None = None) -> dict[str, Any]:
+              accept_loss: bool = False, local: Collection[str] | None = None,
+              gone_hosts: Collection[str] = ()) -> dict[str, Any]:
     """The end-of-run report as plain values (what --report writes as JSON), verdict included.
 
     For one host's share of a flow, ``local`` names its blocks: the report shows them and the links that
     touch them (``blocks`` holds the other hosts' blocks too, as their shares last told them), and counts
-    the losses of the links that leave its blocks; the share a link comes from counts its losses."""
+    the losses of the links that leave its blocks; the share a link comes from counts its losses, unless
+    that host is gone (``gone_hosts``): then what it last said it sent and this share did not receive is
+    counted here."""
     links = []
     losses: list[dict[str, Any]] = []
     for link, sent, received in link_counts(flow, blocks):
@@ -95,7 +98,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             hosts = flow.instances[link.source].host, flow.instances[link.target or ""].host
             links[-1]["crosses"] = f"to host {hosts[1]}" if link.source in (local or ()) else f"from host {hosts[0]}"
             links[-1]["received_samples"] = received.rows if received else None
-            if link.source not in (local or ()):
+            if link.source not in (local or ()) and hosts[0] not in gone_hosts:
                 continue                 # its losses are counted by the host it comes from
         consumer = blocks.get(link.target) if link.target else None
         if sent.dropped_rows - sent.down_rows:
@@ -120,6 +123,8 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             why = f"not acknowledged by a consumer of the endpoint {when}" if endpoint else f"still in flight {when}"
             if crossing:
                 why = f"sent to {link.target} on another host, not acknowledged by it {when}"
+                if link.source not in (local or ()):
+                    why = f"sent by {link.source} on host {hosts[0]}, which was lost, and not received here"
             if consumer is not None and consumer.left_down:
                 why = f"sent to {link.target} before it failed, read by nobody (on_failure = \"continue\")"
             losses.append({"samples": in_flight, "where": f"link {link.label}", "why": why, "accepted": False})

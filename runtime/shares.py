@@ -199,7 +199,8 @@ class Peer:
     dropped_at: float | None = None   # its connection dropped then (None: up, or never made)
     key_failures: int = 0
     handshakes: int = 0
-    lost: str = ""                    # why it is taken as gone
+    lost: str = ""                    # why this share stopped because of it (it aborted, failed, or is gone)
+    gone: bool = False                # silent, or its connection dropped: its statuses are no longer taken
 
     @property
     def state(self) -> ShareState | None:
@@ -301,7 +302,7 @@ class ShareNetwork:
                     self.problems.append(str(error))
                 continue
             peer = self.peers[status.host]
-            if peer.lost:
+            if peer.gone:
                 continue
             peer.status, peer.last_heard, peer.dropped_at = status, now, None
 
@@ -354,11 +355,12 @@ class ShareNetwork:
             if peer.state is ShareState.FINISHED and peer.status and peer.status.outcome == "failed" and not peer.lost:
                 peer.lost = f"host {peer.name} failed"
                 return peer.lost
-            if peer.status is None or peer.lost or peer.state is ShareState.FINISHED:
+            if peer.status is None or peer.gone or peer.state is ShareState.FINISHED:
                 continue
             silent = now - peer.last_heard
             if silent > SILENCE_SECONDS or (peer.dropped_at is not None and now - peer.dropped_at > DROPPED_SECONDS):
                 how = "its connection dropped" if peer.dropped_at is not None else "it fell silent"
+                peer.gone = True
                 peer.lost = (f"host {peer.name} ({peer.endpoint}) was lost: {how}, last heard {silent:.1f} s ago "
                              f"(state {peer.state.value if peer.state else '?'})")
                 return peer.lost
@@ -379,7 +381,11 @@ class ShareNetwork:
     def settled(self, now: float) -> bool:
         """Every peer has finished, or is lost (the end of this share's wait after its own finish)."""
         self.trouble(now)
-        return all(p.state is ShareState.FINISHED or p.lost or p.status is None for p in self.peers.values())
+        return all(p.state is ShareState.FINISHED or p.gone or p.status is None for p in self.peers.values())
+
+    def gone(self) -> set[str]:
+        """Hosts whose shares are gone (silent, or their connections dropped)."""
+        return {p.name for p in self.peers.values() if p.gone}
 
     def left_down(self) -> list[str]:
         """Blocks of other hosts that their shares have left down."""

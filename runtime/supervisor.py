@@ -412,7 +412,8 @@ class Supervisor:
             blocks.update(self.remote_records())
         summary = summarise(self.flow, blocks, outcome=self.outcome().value, seconds=self.elapsed,
                             accept_loss=accept_loss or self.flow.accept_loss,
-                            local=set(self.local) if self.here else None)
+                            local=set(self.local) if self.here else None,
+                            gone_hosts=self.network.gone() if self.network is not None else ())
         if self.network is not None:
             summary["host"] = self.here
             summary["other_hosts"] = self.network.report()

@@ -305,6 +305,27 @@ def test_kill_of_a_share_is_reported_by_the_others_with_exact_accounts(network, 
     print(f"\nhost right killed; the other shares ended {noticed:.1f} s later ({network.kind})")
 
 
+def test_kill_of_the_source_share_is_reported_downstream_with_what_it_last_sent(network, tmp_path):
+    """kill -9 of host antenna's share (the source and the split): the consumers' shares fail naming it, and
+    each counts, on every link from it, what antenna last said it had sent and did not arrive (often nothing:
+    antenna's last status is up to half a second old, and what was still inside it died with it)."""
+    outs, processes = start_long_run(network, tmp_path, Path("left") / "channel-00.cf32")
+    os.killpg(processes["antenna"].pid, signal.SIGKILL)
+    results = finish({h: p for h, p in processes.items() if h != "antenna"}, timeout=60)
+    for host in ("left", "right"):
+        code, err = results[host]
+        assert code == 1 and "host antenna" in err and "was lost" in err, err
+        summary = report(outs[host])
+        incoming = [x for x in summary["links"] if x.get("crosses") == "from host antenna"]
+        assert len(incoming) == 4
+        for x in incoming:
+            reached = max(x["delivered_samples"], x["received_samples"])
+            assert x["in_flight_samples"] == max(0, x["sent_samples"] - reached) and x["received_samples"] > 0
+        counted = sum(x["samples"] for x in summary["losses"] if "which was lost" in x["why"])
+        assert counted == sum(x["in_flight_samples"] for x in incoming)
+        assert summary["lost_samples"] == sum(x["samples"] for x in summary["losses"])
+
+
 def test_ctrl_c_on_one_share_stops_every_share_and_nothing_is_lost(network, tmp_path):
     """SIGINT to a share that only consumes: it says it is stopping, the source's host ends its stream, the
     stream drains across the hosts, and every share ends with no sample lost; what crossed was taken whole."""
