@@ -98,10 +98,13 @@ class EndpointClient:
         self.handshakes = 0
         self.reconnects = 0
         self._pending_ack: int | None = None
+        self._owed_credit = 0                  # credit and acknowledgement not yet handed to ZeroMQ (see _request)
+        self._owed_ack: int | None = None
         self._last_message = time.monotonic()
         self.sock = context.socket(zmq.DEALER)
         try:
             configure(self.sock, self.credit + 2)
+            self.sock.setsockopt(zmq.SNDHWM, 1000)         # requests are tiny; let many wait for the connection
             self.sock.setsockopt(zmq.LINGER, 1000)       # a last ack or bye may still go out
             self.sock.routing_id = os.urandom(16)          # the same consumer after a reconnect, to the endpoint
             if keys:
@@ -114,10 +117,21 @@ class EndpointClient:
         self._request(credit=self.credit)
 
     def _request(self, *, credit: int = 0, ack: int | None = None, bye: bool = False) -> None:
+        """Ask for ``credit`` more messages and acknowledge up to ``ack``. Credit and acknowledgements add
+        up, so what ZeroMQ cannot take now (its queue for a connection that is down is full) is owed and
+        goes with the next request: none is ever dropped (a dropped credit would leave both ends waiting
+        for each other). ``bye`` is sent at once, with what is owed, or not at all (the consumer is going)."""
+        self._owed_credit += credit
+        if ack is not None:
+            self._owed_ack = ack if self._owed_ack is None else max(self._owed_ack, ack)
+        if not (self._owed_credit or self._owed_ack is not None or bye):
+            return
         try:
-            self.sock.send(wire.encode_request(credit, ack=ack, bye=bye), zmq.NOBLOCK)
+            self.sock.send(wire.encode_request(min(self._owed_credit, wire.MAX_CREDIT), ack=self._owed_ack, bye=bye),
+                           zmq.NOBLOCK)
         except zmq.Again:
-            pass            # the connection is not up: ZeroMQ keeps one request queued, the endpoint asks nothing more
+            return
+        self._owed_credit, self._owed_ack = 0, None
 
     def read_events(self) -> None:
         """Count handshakes that succeeded and failed (a wrong key: see :attr:`keys_refused`). A handshake
@@ -154,6 +168,7 @@ class EndpointClient:
         reconnect is skipped and counts as none). The message returned before is acknowledged first.
         Raises WireError for a message that breaks the protocol, EndpointRefused when turned away."""
         self.acknowledge()
+        self._request()                           # what is owed, if anything
         if timeout_ms and not self.sock.poll(timeout_ms):
             self.read_events()
             return None

@@ -77,6 +77,7 @@ class EndpointOutlet(Outlet):
             sock.setsockopt(zmq.ROUTER_MANDATORY, 1)      # a send to a consumer that is gone fails, not vanishes
             sock.setsockopt(zmq.ROUTER_HANDOVER, 1)       # a consumer that reconnects under its id takes over
             sock.setsockopt(zmq.SNDHWM, spec.queue + 2)   # credit keeps what is outstanding below this
+            sock.setsockopt(zmq.RCVHWM, 1000)             # requests are tiny: never hold a consumer's back
             return secure_server(sock, keys, context) if keys else None
 
         self.sock, self.authenticator = open_socket(context, zmq.ROUTER, spec, bind=True, prepare=prepare)

@@ -23,7 +23,7 @@ import warnings
 from pathlib import Path
 
 import pytest
-from runner import bandloom, worker_processes
+from runner import bandloom, descendants, worker_processes
 
 FLOW = """
 [flow]
@@ -171,12 +171,23 @@ def start_share(network: Network, host: str, flow: Path, out: Path, *extra: str)
                             start_new_session=True)
 
 
+def dump_stacks(pid: int) -> None:
+    """Print what every process of a share that did not end is doing (py-spy, when installed)."""
+    spy = shutil.which("py-spy") or str(Path(sys.executable).parent / "py-spy")
+    if not os.path.exists(spy):
+        return
+    for each in [pid] + descendants(pid):
+        done = subprocess.run([spy, "dump", "--pid", str(each)], capture_output=True, text=True, timeout=30)
+        print(done.stdout[-3000:], file=sys.stderr)
+
+
 def finish(processes: dict[str, subprocess.Popen], timeout: float = 180) -> dict[str, tuple[int, str]]:
     results = {}
     for host, process in processes.items():
         try:
             _, err = process.communicate(timeout=timeout)
         except subprocess.TimeoutExpired:
+            dump_stacks(process.pid)
             os.killpg(process.pid, signal.SIGKILL)
             _, err = process.communicate()
             pytest.fail(f"share {host} did not end within {timeout} s:\n{err}")
