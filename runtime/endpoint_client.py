@@ -210,12 +210,12 @@ class EndpointClient:
         return Received(header, data, gap)
 
     def close(self, *, bye: bool = True) -> None:
-        """Say goodbye (what was not acknowledged goes to the next consumer) and close."""
-        if bye:
-            self._request(bye=True)
+        """Send what is owed (an end of stream's acknowledgement among it), say goodbye when ``bye`` (what
+        was not acknowledged goes to the next consumer), and close, giving that a second to go out."""
+        self._request(bye=bye)
         self.sock.disable_monitor()
         self.monitor.close(linger=0)
-        self.sock.close(linger=200 if bye else 0)
+        self.sock.close(linger=1000)
 
 
 class EndpointInlet(Inlet):
