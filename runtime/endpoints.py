@@ -122,11 +122,15 @@ class EndpointOutlet(Outlet):
         poller.register(self.sock, zmq.POLLIN)
         poller.register(self.monitor, zmq.POLLIN)
         poller.poll(timeout_ms)
+        dropped = False
         while self.monitor.poll(0):
             event = recv_monitor_message(self.monitor)["event"]
             self.connections = max(0, self.connections + (1 if event == zmq.EVENT_ACCEPTED else -1))
+            dropped = dropped or event == zmq.EVENT_DISCONNECTED
         self._read_requests()
-        if self.connections == 0 and self.consumer is not None:
+        # Only a connection seen to close detaches: a consumer's first request can be read before the
+        # monitor reports its connection, and must not be taken as coming from nobody.
+        if dropped and self.connections == 0 and self.consumer is not None:
             self._detach()
 
     def _read_requests(self) -> None:
