@@ -23,7 +23,12 @@ def free_port():
 def test_a_consumer_that_reconnects_asks_again_and_gets_every_row_once(rng):
     """Three chunks are taken, the third not yet acknowledged, two more are waiting; the connection is dropped
     and made again. The consumer asks for credit anew, acknowledging the chunk it holds (the endpoint would
-    otherwise send it again), the endpoint sends the rest, and every row arrives once, in order."""
+    otherwise send it again), the endpoint sends the rest, and every row arrives once, in order.
+
+    A message may still reach the consumer twice: one the old connection had already carried when the
+    endpoint, seeing it close, queued it to be sent again (seen beside two CPU-bound processes, 1 run in 12).
+    The consumer knows it by its index and skips it (docs/wire.md), so what the block gets is checked row for
+    row, and every skipped duplicate must be one the endpoint counts as sent again."""
     endpoint = f"tcp://127.0.0.1:{free_port()}"
     context = zmq.Context()
     outlet = EndpointOutlet(context, LinkSpec(link=1, label="a.out -> b.in", endpoint=endpoint, stream=STREAM,
@@ -57,7 +62,8 @@ def test_a_consumer_that_reconnects_asks_again_and_gets_every_row_once(rng):
         deadline = time.monotonic() + 10
         while outlet.stats().delivered_rows < 500 and time.monotonic() < deadline:
             outlet._service(5)                      # the last acknowledgement
-        assert inlet.client.reconnects == 1 and inlet.client.duplicates == 0
+        assert inlet.client.reconnects == 1
+        assert inlet.client.duplicates <= outlet.stats().resent_messages
         assert outlet.stats().delivered_rows == 500 and outlet.stats().consumers == 1
         assert inlet.stats().rows == 500 and inlet.stats().missing == 0
     finally:
