@@ -16,8 +16,6 @@ from collections.abc import Callable
 from importlib import import_module
 from typing import TextIO
 
-from bandloom import __version__
-
 from .terminal import progress
 
 __all__ = ["COMMANDS", "Interrupted", "UsageError", "build_parser", "entry_point", "main"]
@@ -76,11 +74,25 @@ def _command(name: str) -> tuple[Adder, Runner]:
     return getattr(module, add), runner
 
 
+class _ShowVersion(argparse.Action):
+    """``--version``: print ``bandloom VERSION`` and exit; the version is looked up only then."""
+
+    def __init__(self, option_strings: list[str], dest: str = argparse.SUPPRESS, **kwargs: object) -> None:
+        super().__init__(option_strings, dest, nargs=0, default=argparse.SUPPRESS,
+                         help="show the version and exit")
+
+    def __call__(self, parser: argparse.ArgumentParser, namespace: argparse.Namespace, values: object,
+                 option_string: str | None = None) -> None:
+        import bandloom
+        print(f"bandloom {bandloom.__version__}")
+        parser.exit()
+
+
 def build_parser(only: str | None = None) -> argparse.ArgumentParser:
     """The whole command line; with ``only``, other commands are listed but their arguments not loaded."""
     parser = argparse.ArgumentParser(prog="bandloom", description="Polyphase channelizer and synthesis "
                                      "blocks run as processes over ZeroMQ.")
-    parser.add_argument("--version", action="version", version=f"bandloom {__version__}")
+    parser.add_argument("--version", action=_ShowVersion)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
     for name, (_, _, _, help_text) in COMMANDS.items():

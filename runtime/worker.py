@@ -192,7 +192,7 @@ class Worker:
     def wait_for_go(self) -> None:
         """The start barrier: a source produces nothing until every process of the flow has opened its
         links, so no sample is sent (or read from a pipe) before its consumers can take it."""
-        while not self.go and not self.stop and not self.poll_control():
+        while not self.poll_control() and not self.go and not self.stop:     # said go: on at once
             self.control.poll(50)
 
     def timed(self, call: Callable[[], Output | None]) -> Output | None:
@@ -264,8 +264,8 @@ class Worker:
         if not any(not o.spec.bind for o in self.all_outlets()):     # an endpoint waits for acknowledgements instead
             return
         self.send_stats(WorkerEvent.ENDING)
-        while not self.released and not self.poll_control():
-            time.sleep(0.02)
+        while not self.poll_control() and not self.released:
+            self.control.poll(20)
 
     def close(self, event: WorkerEvent, *, message: str = "") -> WorkerEvent:
         """Close the block (flushing its files), send the last statistics, close every socket. A block
