@@ -303,7 +303,7 @@ class Supervisor:
                          f"as lost)")
                 self.aborting_since = now
             said_hello = (BlockState.RUNNING, BlockState.ENDING, BlockState.DONE)
-            if not self.barrier_passed and all(r.state in said_hello for r in self.blocks.values()) and \
+            if not self.barrier_passed and all(r.state in said_hello or r.left_down for r in self.blocks.values()) and \
                     (self.network is None or self.network.all_ready()):
                 self.barrier_passed = True          # every worker (of every host) has said hello: its links are open
             if self.barrier_passed and self.aborting_since is None and not self.failed:
