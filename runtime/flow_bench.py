@@ -187,12 +187,16 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         progress("")
     per_sample = max(1, long.input_samples)
     blocks = []
+    first_of_process: dict[int, str] = {}      # copies sharing a process report its CPU once, on the first
     for name, b in long.summary["blocks"].items():
         active = (b["last_report_clock"] or 0) - (b["first_samples_clock"] or 0)
+        shared_with = first_of_process.setdefault(b["pid"], name)
         cpu = b["cpu_seconds"] - short.summary["blocks"][name]["cpu_seconds"]
         blocks.append({"block": name, "busy_seconds": b["busy_seconds"],
                        "busy_fraction": b["busy_seconds"] / active if active > 0 else None,
-                       "cpu_ns_per_input_sample": cpu / extra * 1e9})
+                       "cpu_ns_per_input_sample": cpu / extra * 1e9 if shared_with == name else None,
+                       "process_of": shared_with})
+    processes = len(first_of_process)
     links = []
     for link, counted in zip(flow.links, long.summary["links"]):
         row_bytes = link.stream.width * link.stream.dtype.itemsize
@@ -200,7 +204,7 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
                       "copied_bytes_per_input_sample": counted["copied_bytes"] / per_sample,
                       "messages": counted["sent_messages"]})
     result: dict[str, Any] = {
-        "flow": str(args.flow), "processes": len(flow.instances),
+        "flow": str(args.flow), "processes": processes,
         "short": {"input_samples": short.input_samples, "seconds": short.seconds, "startup_seconds": short.startup_seconds},
         "long": {"input_samples": long.input_samples, "seconds": long.seconds, "startup_seconds": long.startup_seconds},
         "steady_input_rate": steady,
@@ -214,14 +218,15 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         [key, result[key]["input_samples"], round(result[key]["seconds"], 2),
          "-" if result[key]["startup_seconds"] is None else round(result[key]["startup_seconds"], 2)]
         for key in ("short", "long")]) + "\n\n")
-    out.write(f"steady input rate: {engineering(steady, 'sps')} ({len(flow.instances)} processes)\n")
+    out.write(f"steady input rate: {engineering(steady, 'sps')} ({processes} processes)\n")
     for name, entry in result["in_process"].items():
         out.write(f"in-process {name} on the same data: {engineering(entry['rate'], 'sps')}; "
                   f"flow / in-process = {entry['ratio']:.2f}\n")
-    cpu_total = sum(b["cpu_ns_per_input_sample"] for b in blocks)
+    cpu_total = sum(b["cpu_ns_per_input_sample"] or 0.0 for b in blocks)
     out.write("\n" + render_rows(["block", "busy s", "busy fraction", "CPU ns / input sample"], [
         [b["block"], round(b["busy_seconds"], 2), "-" if b["busy_fraction"] is None else round(b["busy_fraction"], 2),
-         round(b["cpu_ns_per_input_sample"], 1)] for b in blocks] + [["(all)", "", "", round(cpu_total, 1)]]) + "\n")
+         f"(in {b['process_of']}'s)" if b["cpu_ns_per_input_sample"] is None else round(b["cpu_ns_per_input_sample"], 1)]
+        for b in blocks] + [["(all)", "", "", round(cpu_total, 1)]]) + "\n")
     out.write(f"{len(os.sched_getaffinity(0))} cores give {engineering(len(os.sched_getaffinity(0)) * 1e9 / cpu_total, 'sps')} "
               f"at {cpu_total:.1f} ns of CPU per input sample, if nothing else waited.\n\n")
     out.write(render_rows(["link", "messages", "bytes / input sample", "copied bytes / input sample"], [

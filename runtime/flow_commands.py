@@ -16,7 +16,7 @@ from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
 from .cli import Interrupted
-from .flow import Flow, FlowErrors, format_key_path, load_flow
+from .flow import Flow, FlowErrors, format_key_path, load_flow, process_groups
 from .flow.declarations import BLOCK_OPTIONS
 from .flow.overrides import parse_override
 from .launcher import Launcher, take_launcher
@@ -85,7 +85,10 @@ def run_check(args: argparse.Namespace, out: TextIO, log: TextIO | None = None) 
     flow = _load(args, log)
     if flow is None:
         return 1
-    out.write(f"{args.flow}: ok: {len(flow.instances)} block processes, {len(flow.links)} links\n")
+    processes = len(process_groups(flow.instances.values()))
+    blocks = (f"{len(flow.instances)} block processes" if processes == len(flow.instances) else
+              f"{len(flow.instances)} blocks in {processes} processes")
+    out.write(f"{args.flow}: ok: {blocks}, {len(flow.links)} links\n")
     for inst in flow.instances.values():
         for port, stream in inst.output_streams.items():
             if stream.kind == "channels":

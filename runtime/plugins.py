@@ -26,7 +26,7 @@ PORT_KINDS = {"samples", "channels", "any"}
 
 #: Keys of a [blocks.NAME] table that belong to the runtime, not to the block type (the block options
 #: are declared in flow.declarations.BLOCK_OPTIONS; a test holds the two lists together).
-RESERVED_KEYS = ("type", "per_channel", "on_failure", "restarts", "restart_delay", "host")
+RESERVED_KEYS = ("type", "per_channel", "on_failure", "restarts", "restart_delay", "copies_per_process", "host")
 
 
 class PluginError(Exception):

@@ -138,7 +138,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
     report = {}
     for name, r in blocks.items():
         totals = r.totals
-        report[name] = {"pid": r.pid, "state": r.state.value, "exit": describe_exit(r.process.returncode),
+        report[name] = {"pid": r.pid, "state": r.state.value, "exit": r.exit_description,
                         "reason": r.exit_reason, "report": list(r.report), "restarts": r.restarts,
                         "incidents": list(r.incidents),
                         "samples_in": totals.rows_in if totals else 0, "samples_out": totals.rows_out if totals else 0,

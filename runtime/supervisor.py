@@ -37,11 +37,11 @@ import zmq
 from bandloom.blocks._bank_params import save_designs
 
 from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessEnd, StatsMessage, WorkerEvent, next_state
-from .flow import FailurePolicy, Flow, Instance, Link, OnFailure
+from .flow import FailurePolicy, Flow, Instance, Link, OnFailure, process_groups
 from .launcher import LaunchedProcess, Launcher
 from .run_report import StatusDisplay, describe_exit, summarise
 from .shares import HEARTBEAT_SECONDS, SILENCE_SECONDS, BlockView, RemoteProcess, ShareNetwork, ShareState, ShareStatus
-from .worker_spec import LinkSpec, WorkerSpec
+from .worker_spec import LinkSpec, WorkerSpec, specs_to_json
 
 __all__ = ["BlockRecord", "DRAIN_SECONDS", "RunOutcome", "Supervisor"]
 
@@ -75,10 +75,19 @@ class BlockRecord:
     incidents: list[str] = field(default_factory=list)   # failures survived (restarted, or left down)
     restart_at: float = 0.0       # monotonic time of the pending restart (state RESTARTING)
     left_down: bool = False       # on_failure = "continue": stays down
+    shares_process: bool = False  # one of several copies in one process: its error report ends it
 
     @property
     def pid(self) -> int:
         return self.process.pid
+
+    @property
+    def exit_description(self) -> str:
+        """How its process ended (``exit status 1``, ``killed by SIGKILL``), or that it runs on."""
+        code = self.process.poll()
+        if code is None and self.shares_process and self.state in TERMINAL_STATES:
+            return "closed; its process runs on for the other copies"
+        return describe_exit(code)
 
     @property
     def totals(self) -> StatsMessage | None:
@@ -189,15 +198,19 @@ class Supervisor:
             outputs=outputs, control=f"ipc://{self.folder}/control", stats=f"ipc://{self.folder}/stats",
             restart=record.restarts if record else 0, design_folder=self.folder)
 
-    def start_worker(self, inst: Instance, spec: WorkerSpec) -> LaunchedProcess:
+    def start_worker(self, group: list[Instance]) -> LaunchedProcess:
+        """Start one worker process for ``group``: one instance, or copies of a per-channel block that share
+        a process (``copies_per_process``)."""
         spec_path = os.path.join(self.folder, f"spec-{self.workers_started}.json")   # in flow order; restarts after
         self.workers_started += 1
+        records = [self.blocks.get(inst.name) for inst in group]
         with open(spec_path, "w") as handle:
-            handle.write(spec.to_json())
+            handle.write(specs_to_json([self.worker_spec(inst, record) for inst, record in zip(group, records)]))
         # Only the block that reads standard input gets it, and only the one that
         # writes data to standard output gets that; the rest print to stderr.
         assert self.launcher is not None
-        return self.launcher.start(spec_path, keep_stdin=inst.cls.uses_stdin, keep_stdout=inst.cls.uses_stdout)
+        first = group[0].cls
+        return self.launcher.start(spec_path, keep_stdin=first.uses_stdin, keep_stdout=first.uses_stdout)
 
     # -- the run -------------------------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -227,9 +240,11 @@ class Supervisor:
             if self.launcher is None:
                 self.launcher = Launcher()
             self.launcher.preload(sorted({inst.type_name for inst in self.local.values()}))
-            for inst in self.local.values():
-                self.blocks[inst.name] = BlockRecord(inst.name, self.start_worker(inst, self.worker_spec(inst)),
-                                                     policy=inst.policy)
+            for group in process_groups(self.local.values()):
+                process = self.start_worker(group)
+                for inst in group:
+                    self.blocks[inst.name] = BlockRecord(inst.name, process, policy=inst.policy,
+                                                         shares_process=len(group) > 1)
             self.watch(control, stats)
             if self.network is not None:
                 self.settle_with_peers()
@@ -272,6 +287,8 @@ class Supervisor:
                 self.aborting_since = self.aborting_since or now
             for record in self.blocks.values():
                 code = record.process.poll()
+                if code is None and record.shares_process and record.state is BlockState.ERROR:
+                    code = 1          # its process runs on for the other copies; this block is closed
                 if code is not None and record.state not in TERMINAL_STATES | {BlockState.RESTARTING}:
                     self.drain_stats(stats)
                     record.process_ended(code)
@@ -360,7 +377,7 @@ class Supervisor:
 
     def restart(self, record: BlockRecord) -> None:
         inst = self.flow.instances[record.name]
-        record.process = self.start_worker(inst, self.worker_spec(inst, record))
+        record.process = self.start_worker([inst])
         record.state, record.exit_reason, record.report, record.rate = BlockState.STARTING, "", (), 0.0
 
     def releasable(self) -> list[str]:
@@ -510,7 +527,7 @@ class Supervisor:
     def failure_line(record: BlockRecord) -> str:
         how = "failed" if record.state is BlockState.FAILED else "died"
         reason = f": {record.exit_reason}" if record.exit_reason else ""
-        return f"block {record.name!r} (pid {record.pid}) {how} ({describe_exit(record.process.returncode)}){reason}"
+        return f"block {record.name!r} (pid {record.pid}) {how} ({record.exit_description}){reason}"
 
     def failures(self) -> list[str]:
         """One line per failure: those the run survived (restarted, or left down), then those that stopped it."""

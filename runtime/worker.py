@@ -1,6 +1,9 @@
 """One block's process: ``python -m bandloom.runtime.worker SPEC.json``.
 
-The supervisor starts one worker per block instance. A worker builds its
+The supervisor starts one worker per block instance, or one for several
+copies of a per-channel block (``copies_per_process``: :class:`WorkerProcess`
+runs them in one loop, each with its own links, counters and statistics;
+one that fails is closed and reported alone, the others go on). A worker builds its
 block, binds its inputs, connects its outputs, then moves chunks until every
 input has ended (or, for a source, until the block has nothing more or a stop
 is requested), sends end of stream downstream, closes the block (flushing
@@ -46,9 +49,9 @@ from .endpoint_client import EndpointInlet
 from .endpoints import EndpointOutlet
 from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet, column_major
 from .plugins import load_registry
-from .worker_spec import WorkerSpec
+from .worker_spec import WorkerSpec, specs_from_json
 
-__all__ = ["Worker", "describe_failure", "main"]
+__all__ = ["Worker", "WorkerProcess", "describe_failure", "main"]
 
 STATS_INTERVAL = 0.5
 
@@ -56,20 +59,12 @@ STATS_INTERVAL = 0.5
 class Worker:
     """One block in its own process, between its inlets and outlets (see the module doc)."""
 
-    def __init__(self, spec: WorkerSpec) -> None:
+    def __init__(self, spec: WorkerSpec, process: WorkerProcess | None = None) -> None:
         self.spec = spec
         self.name = spec.name
-        self.context = zmq.Context()
-        self.control = self.context.socket(zmq.SUB)
-        self.control.setsockopt(zmq.LINGER, 0)
-        self.control.setsockopt(zmq.SUBSCRIBE, b"")
-        self.control.connect(spec.control)
-        self.stats_socket = self.context.socket(zmq.PUSH)
-        self.stats_socket.setsockopt(zmq.LINGER, 5000)
-        self.stats_socket.connect(spec.stats)
-        self.go = False
-        self.stop = False
-        self.abort = False
+        self.process = process if process is not None else WorkerProcess(spec)
+        self.context = self.process.context
+        self.stats_socket = self.process.stats_socket
         self.released = False
         self.inlets: list[Inlet] = []
         self.outlets: dict[str, list[Outlet]] = {}
@@ -80,39 +75,30 @@ class Worker:
         self.started = time.monotonic()
         self.first_rows_clock: float | None = None   # when the block first took or made rows
         self.busy_seconds = 0.0                      # inside produce, consume and finish
-        self.parent = os.getppid()
+        self.closed: WorkerEvent | None = None       # how the block was closed, once it was
+        self.process.workers.append(self)
 
-    # -- control and statistics -------------------------------------------------------------
-    @property
-    def parent_gone(self) -> bool:
-        """The supervisor has died (this process was handed to another parent)."""
-        return os.getppid() != self.parent
+    # what the whole process was told (see WorkerProcess)
+    go = property(lambda self: self.process.go)
+    stop = property(lambda self: self.process.stop)
+    abort = property(lambda self: self.process.abort)
+    control = property(lambda self: self.process.control)
+    parent_gone = property(lambda self: self.process.parent_gone)
 
     def poll_control(self) -> bool:
-        """Read what the supervisor said; True once the run is being aborted."""
-        if self.parent_gone:
-            self.abort = True          # the supervisor is gone: nobody will ever stop us
-        while True:
-            try:
-                message = Control.decode(self.control.recv(zmq.NOBLOCK))
-            except zmq.Again:
-                break
-            if message is None:
-                continue
-            if message.word is ControlWord.ABORT:
-                self.abort = True
-            elif message.word is ControlWord.RELEASE and message.block == self.name:
-                self.released = True
-            elif message.word in (ControlWord.DETACH, ControlWord.ATTACH):
-                for outlet in self.outlets_to(message.block):
-                    outlet.detach() if message.word is ControlWord.DETACH else outlet.attach()
-            elif message.word is ControlWord.GO:
-                self.go = True
-            elif message.word is ControlWord.STOP:
-                if not self.stop and self.block is not None and self.block.is_source:
-                    self.block.stop_requested()
-                self.stop = True
-        return self.abort
+        """Read what the supervisor said (for every block of the process); True once the run is being aborted."""
+        return self.process.poll_control()
+
+    # -- control and statistics -------------------------------------------------------------
+    def hear(self, message: Control) -> None:
+        """A control word about this block, or about a block this one sends to."""
+        if message.word is ControlWord.RELEASE and message.block == self.name:
+            self.released = True
+        elif message.word in (ControlWord.DETACH, ControlWord.ATTACH):
+            for outlet in self.outlets_to(message.block):
+                outlet.detach() if message.word is ControlWord.DETACH else outlet.attach()
+        elif message.word is ControlWord.STOP and not self.stop and self.block is not None and self.block.is_source:
+            self.block.stop_requested()
 
     def all_outlets(self) -> list[Outlet]:
         """Every outlet of every output port."""
@@ -216,6 +202,20 @@ class Worker:
             self.flush_due_batches()
             self.maybe_stats()
 
+    def take(self, inlet: Inlet) -> None:
+        """Receive what ``inlet`` has, hand it to the block, pass on what the block made."""
+        assert self.block is not None
+        try:
+            chunk = inlet.receive()
+        except wire.WireError as error:
+            raise RuntimeError(f"link {inlet.spec.label}: bad message: {error}") from None
+        if chunk is not None and (chunk.count or chunk.dropped or chunk.discontinuity):
+            self.rows_in += chunk.count
+            if self.first_rows_clock is None and chunk.count:
+                self.first_rows_clock = time.monotonic()
+            self.emit(self.timed(partial(self.block.consume, inlet.port, chunk)))
+            inlet.processed()
+
     def run_consumer(self, block: Block) -> None:
         poller = zmq.Poller()
         by_socket = {}
@@ -229,22 +229,27 @@ class Worker:
                 return
             for sock, _ in poller.poll(BATCH_POLL_MS if holding else POLL_MS):
                 inlet = by_socket[sock]
-                try:
-                    chunk = inlet.receive()
-                except wire.WireError as error:
-                    raise RuntimeError(f"link {inlet.spec.label}: bad message: {error}") from None
-                if chunk is not None and (chunk.count or chunk.dropped or chunk.discontinuity):
-                    self.rows_in += chunk.count
-                    if self.first_rows_clock is None and chunk.count:
-                        self.first_rows_clock = time.monotonic()
-                    self.emit(self.timed(partial(block.consume, inlet.port, chunk)))
-                    inlet.processed()
+                self.take(inlet)
                 if inlet.ended:
                     open_inlets.discard(inlet)
                     poller.unregister(sock)
             holding = self.flush_due_batches()
             self.maybe_stats()
         self.emit(self.timed(block.finish))
+
+    def end_streams(self) -> None:
+        """Send end of stream on every output."""
+        assert self.block is not None
+        for port, outs in self.outlets.items():
+            final = self.block.end_index(port)
+            for outlet in outs:
+                outlet.end(final)
+
+    @property
+    def needs_release(self) -> bool:
+        """Whether the block must keep its links open until released (an endpoint waits for
+        acknowledgements instead)."""
+        return any(not o.spec.bind for o in self.all_outlets())
 
     def run(self) -> None:
         block = self.build()
@@ -253,24 +258,21 @@ class Worker:
         else:
             self.run_consumer(block)
         if not self.abort:
-            for port, outs in self.outlets.items():
-                final = block.end_index(port)
-                for outlet in outs:
-                    outlet.end(final)
+            self.end_streams()
             self.wait_for_release()
 
     def wait_for_release(self) -> None:
         """Keep the links open until the consumers have read everything (see the module doc)."""
-        if not any(not o.spec.bind for o in self.all_outlets()):     # an endpoint waits for acknowledgements instead
+        if not self.needs_release:
             return
         self.send_stats(WorkerEvent.ENDING)
         while not self.poll_control() and not self.released:
             self.control.poll(20)
 
     def close(self, event: WorkerEvent, *, message: str = "") -> WorkerEvent:
-        """Close the block (flushing its files), send the last statistics, close every socket. A block
+        """Close the block (flushing its files), send the last statistics, close its links. A block
         whose closing fails (its last data or its metadata not written) has failed: the event returned
-        is then ERROR, with the reason."""
+        is then ERROR, with the reason. A block alone in its process closes the process's sockets too."""
         report: list[str] = []
         if self.block is not None:
             try:
@@ -294,13 +296,143 @@ class Worker:
             inlet.close()
         for outlet in self.all_outlets():
             outlet.close(discard=event is not WorkerEvent.DONE)
+        self.closed = event
+        if len(self.process.workers) == 1:
+            self.process.close()
+        return event
+
+    def fail(self, error: BaseException) -> WorkerEvent:
+        """The block failed: say so on standard error and to the supervisor, and close it."""
+        message = describe_failure(error)
+        print(f"bandloom: block {self.name!r} failed: {message}", file=sys.stderr)
+        if os.environ.get("BANDLOOM_DEBUG"):
+            print(traceback.format_exc(), file=sys.stderr)
+        return self.close(WorkerEvent.ERROR, message=message)
+
+
+class WorkerProcess:
+    """What the blocks of one worker process share: the ZeroMQ context, the supervisor's control and
+    statistics sockets, and what the supervisor said to all (go, stop, abort). Usually one block; copies
+    of a per-channel block with ``copies_per_process`` run several in one loop (:meth:`run_copies`), each
+    with its own links, counters, statistics and failure."""
+
+    def __init__(self, spec: WorkerSpec) -> None:
+        self.spec = spec
+        self.context = zmq.Context()
+        self.control = self.context.socket(zmq.SUB)
+        self.control.setsockopt(zmq.LINGER, 0)
+        self.control.setsockopt(zmq.SUBSCRIBE, b"")
+        self.control.connect(spec.control)
+        self.stats_socket = self.context.socket(zmq.PUSH)
+        self.stats_socket.setsockopt(zmq.LINGER, 5000)
+        self.stats_socket.connect(spec.stats)
+        self.go = False
+        self.stop = False
+        self.abort = False
+        self.parent = os.getppid()
+        self.workers: list[Worker] = []
+
+    @property
+    def parent_gone(self) -> bool:
+        """The supervisor has died (this process was handed to another parent)."""
+        return os.getppid() != self.parent
+
+    def poll_control(self) -> bool:
+        """Read what the supervisor said; True once the run is being aborted."""
+        if self.parent_gone:
+            self.abort = True          # the supervisor is gone: nobody will ever stop us
+        while True:
+            try:
+                message = Control.decode(self.control.recv(zmq.NOBLOCK))
+            except zmq.Again:
+                break
+            if message is None:
+                continue
+            for worker in self.workers:
+                worker.hear(message)
+            if message.word is ControlWord.ABORT:
+                self.abort = True
+            elif message.word is ControlWord.GO:
+                self.go = True
+            elif message.word is ControlWord.STOP:
+                self.stop = True
+        return self.abort
+
+    def run_copies(self) -> None:
+        """Run every block of the process (copies of one per-channel block: consumers) in one loop. A block
+        that fails is closed and reported (ERROR) alone; the others go on. Each block ends its streams
+        when its inputs have ended, and closes once released."""
+        workers = list(self.workers)
+        live: list[Worker] = []
+        for worker in workers:
+            try:
+                worker.build()
+                live.append(worker)
+            except Exception as error:
+                worker.fail(error)
+        poller = zmq.Poller()
+        by_socket: dict[zmq.Socket, tuple[Worker, Inlet]] = {}
+        open_inlets: dict[Worker, set[Inlet]] = {}
+        for worker in live:
+            open_inlets[worker] = set(worker.inlets)
+            for inlet in worker.inlets:
+                poller.register(inlet.sock, zmq.POLLIN)
+                by_socket[inlet.sock] = (worker, inlet)
+        ending: list[Worker] = []            # streams ended, waiting to be released
+
+        def drop(worker: Worker) -> None:
+            for inlet in open_inlets.pop(worker, set()):
+                poller.unregister(inlet.sock)
+
+        holding = False
+        while open_inlets or ending:
+            if self.poll_control():
+                return
+            for sock, _ in poller.poll(BATCH_POLL_MS if holding else POLL_MS):
+                if sock not in by_socket:
+                    continue
+                worker, inlet = by_socket[sock]
+                if worker not in open_inlets:
+                    continue                   # failed earlier in this turn
+                try:
+                    worker.take(inlet)
+                    if inlet.ended:
+                        open_inlets[worker].discard(inlet)
+                        poller.unregister(sock)
+                        del by_socket[sock]
+                    if not open_inlets[worker]:
+                        del open_inlets[worker]
+                        assert worker.block is not None
+                        worker.emit(worker.timed(worker.block.finish))
+                        worker.end_streams()
+                        if worker.needs_release:
+                            worker.send_stats(WorkerEvent.ENDING)
+                            ending.append(worker)
+                        else:
+                            worker.close(WorkerEvent.DONE)
+                except Aborted:
+                    return
+                except Exception as error:
+                    drop(worker)
+                    worker.fail(error)
+            for worker in [w for w in ending if w.released]:
+                ending.remove(worker)
+                worker.close(WorkerEvent.DONE)
+            holding = False
+            for worker in open_inlets:
+                holding = worker.flush_due_batches() or holding
+                worker.maybe_stats()
+            for worker in ending:
+                worker.maybe_stats()
+
+    def close(self) -> None:
+        """Close the process's own sockets (after every block has closed)."""
         self.control.close()
         # the last statistics may wait a while for a busy supervisor, but not for one that is gone
         self.stats_socket.close(linger=0 if self.parent_gone else 5000)
         self.context.term()
         if self.parent_gone:
             remove_run_folder(self.spec)
-        return event
 
 
 def remove_run_folder(spec: WorkerSpec) -> None:
@@ -323,29 +455,43 @@ def describe_failure(error: BaseException) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``python -m bandloom.runtime.worker SPEC.json``: run one block; 0 when done or aborted, 1 on failure."""
+    """``python -m bandloom.runtime.worker SPEC.json``: run the process's block (or copies); 0 when done or
+    aborted, 1 when a block failed."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     if hasattr(signal, "SIGXFSZ"):
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)     # a file-size limit is a write error naming the file
     reuse_chunk_buffers()
     args = sys.argv[1:] if argv is None else argv
-    spec = WorkerSpec.from_json(Path(args[0]).read_text())
+    specs = specs_from_json(Path(args[0]).read_text())
     # what ps and top show for this process (a worker forked by the launcher would show the launcher's line)
-    setproctitle.setproctitle(f"bandloom worker {spec.name} ({spec.type_name}) {args[0]}")
-    worker = Worker(spec)
+    names = specs[0].name if len(specs) == 1 else f"{specs[0].name}..{specs[-1].name}"
+    setproctitle.setproctitle(f"bandloom worker {names} ({specs[0].type_name}) {args[0]}")
+    if len(specs) > 1:
+        return run_copies(specs)
+    worker = Worker(specs[0])
     try:
         worker.run()
     except Aborted:
         return 1 if worker.close(WorkerEvent.ABORTED) is WorkerEvent.ERROR else 0
     except Exception as error:
-        message = describe_failure(error)
-        print(f"bandloom: block {worker.name!r} failed: {message}", file=sys.stderr)
-        if os.environ.get("BANDLOOM_DEBUG"):
-            print(traceback.format_exc(), file=sys.stderr)
-        worker.close(WorkerEvent.ERROR, message=message)
+        worker.fail(error)
         return 1
     return 1 if worker.close(WorkerEvent.ABORTED if worker.abort else WorkerEvent.DONE) is WorkerEvent.ERROR else 0
+
+
+def run_copies(specs: list[WorkerSpec]) -> int:
+    """Several copies of a per-channel block in this process (see :class:`WorkerProcess`)."""
+    process = WorkerProcess(specs[0])
+    workers = [Worker(spec, process) for spec in specs]
+    try:
+        process.run_copies()
+    finally:
+        for worker in workers:
+            if worker.closed is None:
+                worker.close(WorkerEvent.ABORTED if process.abort else WorkerEvent.DONE)
+        process.close()
+    return 1 if any(w.closed is WorkerEvent.ERROR for w in workers) else 0
 
 
 if __name__ == "__main__":

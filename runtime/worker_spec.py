@@ -1,9 +1,10 @@
 """What the supervisor hands a worker process: its block and its links, as typed values with a JSON form.
 
 The supervisor writes one :class:`WorkerSpec` per block instance to a file in
-the run's private folder and starts ``python -m bandloom.runtime.worker FILE``;
-the worker reads it back with :meth:`WorkerSpec.from_json`. Nothing else
-passes between them before the run starts.
+the run's private folder (a list of them for copies of a per-channel block
+that share a process, see ``copies_per_process``) and starts
+``python -m bandloom.runtime.worker FILE``; the worker reads it back with
+:func:`specs_from_json`. Nothing else passes between them before the run starts.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from bandloom.blocks.block import StreamInfo
 
 from .flow.model import WhenFull
 
-__all__ = ["LinkSpec", "WorkerSpec"]
+__all__ = ["LinkSpec", "WorkerSpec", "specs_from_json", "specs_to_json"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -100,3 +101,16 @@ class WorkerSpec:
         values.update(inputs={port: LinkSpec.from_dict(d) for port, d in values["inputs"].items()},
                       outputs={port: [LinkSpec.from_dict(d) for d in ds] for port, ds in values["outputs"].items()})
         return cls(**values)
+
+
+def specs_to_json(specs: list[WorkerSpec]) -> str:
+    """The spec file of one worker process: one block's spec, or a list of them for copies of a per-channel
+    block that share a process (``copies_per_process``)."""
+    return specs[0].to_json() if len(specs) == 1 else "[" + ", ".join(spec.to_json() for spec in specs) + "]"
+
+
+def specs_from_json(text: str) -> list[WorkerSpec]:
+    """The blocks of one worker process, from what :func:`specs_to_json` wrote."""
+    if text.lstrip().startswith("["):
+        return [WorkerSpec.from_json(json.dumps(item)) for item in json.loads(text)]
+    return [WorkerSpec.from_json(text)]

@@ -14,8 +14,8 @@ The format is specified in docs/flow-files.md. One concept a module:
 """
 
 from .loading import check_flow, load_flow
-from .model import FailurePolicy, Flow, Instance, Link, LinkOptions, OnFailure, WhenFull
+from .model import FailurePolicy, Flow, Instance, Link, LinkOptions, OnFailure, WhenFull, process_groups
 from .problems import FlowErrors, Problem, format_key_path
 
 __all__ = ["FailurePolicy", "Flow", "FlowErrors", "Instance", "Link", "LinkOptions", "OnFailure", "Problem", "WhenFull",
-           "check_flow", "format_key_path", "load_flow"]
+           "check_flow", "format_key_path", "load_flow", "process_groups"]

@@ -61,7 +61,7 @@ TOLERANCE = Param("tolerance", "quantity", "how far a frequency in 'select' may 
 
 #: What the runtime does when a block's process fails: keys of any [blocks.NAME] table, beside its
 #: parameters; they become a FailurePolicy.
-BLOCK_OPTIONS: tuple[Param, ...] = (
+FAILURE_OPTIONS: tuple[Param, ...] = (
     Param("on_failure", "choice", "what the run does when this block fails or dies", default="stop",
           choices=tuple(o.value for o in OnFailure),
           rule="'stop' (the run fails), 'restart' (a new process takes over; what it missed is a counted gap) "
@@ -72,6 +72,13 @@ BLOCK_OPTIONS: tuple[Param, ...] = (
           "doubled for each one after", default=1.0, unit="s", minimum=0.0, maximum=3600.0,
           rule="a duration from 0 s to 3600 s"),
 )
+#: How many copies of a per-channel block share one process.
+COPIES_PER_PROCESS = Param(
+    "copies_per_process", "int", "for a per-channel block: how many of its copies run in one process (each "
+    "keeps its own links, counters and failure; a crash of the process takes all of them)", default=1,
+    minimum=1, maximum=4096, rule="a whole number from 1 to 4096")
+#: Runtime keys of any [blocks.NAME] table, beside its parameters.
+BLOCK_OPTIONS: tuple[Param, ...] = FAILURE_OPTIONS + (COPIES_PER_PROCESS,)
 BLOCK_OPTION_KEYS = tuple(p.name for p in BLOCK_OPTIONS)
 
 #: The options of a link, converted like block parameters; each becomes a field of LinkOptions.
@@ -104,6 +111,7 @@ class Declaration:
     policy: FailurePolicy
     ok: bool                                                          # declared without problems
     host: str | None = None                                           # [hosts.NAME] it runs on
+    copies_per_process: int = 1                                       # per-channel copies sharing a process
     feeds: list[tuple[int | str, str]] = field(default_factory=list)  # (links index or "per_channel", port)
 
 
@@ -197,14 +205,32 @@ class _TableReader:
             return None
         cls, params, per_channel = read
         policy = self.failure_policy(name, cls, table)
+        copies = self.copies_per_process(name, table, per_channel, policy)
         host = table.get("host")
         return Declaration(name=name, cls=cls, params=params, per_channel=per_channel, policy=policy,
-                           ok=len(self.log) == before, host=host if isinstance(host, str) else None)
+                           ok=len(self.log) == before, host=host if isinstance(host, str) else None,
+                           copies_per_process=copies)
+
+    def copies_per_process(self, name: str, table: dict[str, Any], per_channel: dict[str, Any] | None,
+                           policy: FailurePolicy) -> int:
+        at: KeyPath = ("blocks", name, COPIES_PER_PROCESS.name)
+        good, copies = convert_option(self.log, ("blocks", name), COPIES_PER_PROCESS, table)
+        if not good or COPIES_PER_PROCESS.name not in table:
+            return 1
+        if per_channel is None:
+            self.log.add(at, "copies_per_process applies to a per-channel block (per_channel = { from = ... }); "
+                         "this block is one process")
+            return 1
+        if copies > 1 and policy.on_failure is OnFailure.RESTART:
+            self.log.add(at, "copies that share a process cannot be restarted one by one; use on_failure = "
+                         "\"continue\" or \"stop\", or copies_per_process = 1")
+            return 1
+        return int(copies)
 
     def failure_policy(self, name: str, cls: type[Block], table: dict[str, Any]) -> FailurePolicy:
         at: KeyPath = ("blocks", name)
         values: dict[str, Any] = {}
-        for param in BLOCK_OPTIONS:
+        for param in FAILURE_OPTIONS:
             good, values[param.name] = convert_option(self.log, at, param, table)
             if not good:
                 return FailurePolicy()

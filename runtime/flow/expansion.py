@@ -296,7 +296,8 @@ class _Expander:
             return
         self.instances[inst_name] = Instance(name=inst_name, declared=name, cls=decl.cls, params=dict(decl.params),
                                              placeholders=placeholders, inputs=inputs, output_streams=output_streams,
-                                             policy=decl.policy, host=decl.host)
+                                             policy=decl.policy, host=decl.host,
+                                             copies_per_process=decl.copies_per_process)
         self.made[name].append(inst_name)
 
     def endpoint_links(self, links: list[RawLink]) -> None:

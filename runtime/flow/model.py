@@ -8,6 +8,7 @@ the flow is being expanded.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from enum import Enum
 from pathlib import Path
@@ -17,7 +18,7 @@ from bandloom.blocks.block import Block, StreamInfo
 
 from .problems import KeyPath, format_key_path
 
-__all__ = ["FailurePolicy", "Flow", "Host", "Instance", "Link", "LinkOptions", "OnFailure", "WhenFull"]
+__all__ = ["FailurePolicy", "Flow", "Host", "Instance", "Link", "LinkOptions", "OnFailure", "WhenFull", "process_groups"]
 
 
 class WhenFull(str, Enum):
@@ -112,6 +113,7 @@ class Instance:
     output_streams: dict[str, StreamInfo] = field(default_factory=dict)
     policy: FailurePolicy = FailurePolicy()
     host: str | None = None          # the [hosts.NAME] it runs on (None: a flow without hosts)
+    copies_per_process: int = 1      # of a per-channel block: how many of its copies share one process
 
     @property
     def type_name(self) -> str:
@@ -181,3 +183,19 @@ class Flow:
     def share(self, host: str) -> list[str]:
         """The instances that run on ``host``, producers first."""
         return [name for name, inst in self.instances.items() if inst.host == host]
+
+
+def process_groups(instances: Iterable[Instance]) -> list[list[Instance]]:
+    """The instances, one list per worker process, in their order: copies of a per-channel block go
+    ``copies_per_process`` to a process, every other instance alone."""
+    groups: list[list[Instance]] = []
+    filling: dict[str, list[Instance]] = {}       # declared block -> its group being filled
+    for inst in instances:
+        group = filling.get(inst.declared)
+        if group is None or len(group) >= inst.copies_per_process:
+            group = []
+            groups.append(group)
+            if inst.copies_per_process > 1:
+                filling[inst.declared] = group
+        group.append(inst)
+    return groups
