@@ -4,6 +4,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 
@@ -58,3 +59,23 @@ def worker_processes(below=None):
         if words[:2] == [b"bandloom", b"worker"] and len(words) >= 5:
             found[pid] = (words[2].decode(), Path(words[4].decode()))
     return found
+
+
+def start_flow(flow_path, out_dir):
+    """Start ``bandloom run FLOW`` (quiet, with a JSON report) without waiting: (process, report path)."""
+    report = Path(out_dir) / "report.json"
+    run = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow_path), "--quiet", "--out",
+                            str(out_dir), "--report", str(report)], stderr=subprocess.PIPE, text=True)
+    return run, report
+
+
+def wait_for_worker(run, name, timeout=60):
+    """The pid of the worker process ``name`` (its title's name: ``split``, or ``rec[0]..rec[3]`` for copies
+    sharing a process) below the running ``run``, once it is there."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        found = [pid for pid, (names, _) in worker_processes(below=run.pid).items() if names == name]
+        if found:
+            return found[0]
+        time.sleep(0.2)
+    raise AssertionError(f"no worker process {name} within {timeout} s")

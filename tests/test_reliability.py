@@ -17,7 +17,7 @@ from bandloom.runtime.flow import check_flow
 from bandloom.runtime.plugins import load_registry
 from bandloom.runtime.run_report import summarise, verdict
 from bandloom.runtime.supervisor import BlockRecord
-from runner import bandloom, worker_processes
+from runner import bandloom, start_flow, wait_for_worker
 
 REGISTRY = load_registry()
 
@@ -166,16 +166,10 @@ def test_rows_waiting_in_a_batch_when_a_run_is_aborted_are_counted_lost(tmp_path
                     '[[links]]\nfrom = "band.samples"\nto = "split.samples"\n'
                     '[[links]]\nfrom = "split.channels"\nselect = 1\nto = "slow.samples"\nlatency = "10 s"\n'
                     '[[links]]\nfrom = "split.channels"\nselect = 2\nto = "victim.samples"\nlatency = 0\n')
-    report_path = tmp_path / "report.json"
-    run = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet", "--out",
-                            str(tmp_path), "--report", str(report_path)], stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 60
-    victim = []
-    while not victim and time.monotonic() < deadline:
-        time.sleep(0.2)
-        victim = [pid for pid, (name, _) in worker_processes(below=run.pid).items() if name == "victim"]
+    run, report_path = start_flow(flow, tmp_path)
+    victim = wait_for_worker(run, "victim")
     time.sleep(1.5)               # 100,000 frames/s fill a batch (32768 rows) about three times a second
-    os.kill(victim[0], signal.SIGKILL)
+    os.kill(victim, signal.SIGKILL)
     stderr = run.communicate(timeout=60)[1]
     report = json.loads(report_path.read_text())
     assert run.returncode == 1, stderr

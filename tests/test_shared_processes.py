@@ -7,12 +7,10 @@ the in-process bank (and that to scipy's brute force, tests/test_banks.py)."""
 import json
 import os
 import signal
-import subprocess
-import sys
 import time
 
 import pytest
-from runner import bandloom, run_flow, worker_processes
+from runner import bandloom, run_flow, start_flow, wait_for_worker
 
 CHANNEL_SAMPLES = 200_000     # 1 s at 800 kHz, 8 channels twice oversampled: 200 kHz each
 
@@ -106,27 +104,20 @@ def test_kill_of_a_shared_process_is_accounted_copy_by_copy(tmp_path, busy_machi
     """kill -9 of the process running writers 0-3, beside two CPU-bound processes: the run fails naming each
     of the four, the other process's writers are stopped with the run, and every link adds up."""
     flow = write_flow(tmp_path, copies=4, rate=400_000, seconds=30, pace=True)
-    report_path = tmp_path / "report.json"
-    run = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet", "--out",
-                            str(tmp_path), "--report", str(report_path)], stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 60
-    victim = []
-    while not victim and time.monotonic() < deadline:
-        time.sleep(0.2)
-        victim = [pid for pid, (names, _) in worker_processes(below=run.pid).items() if names == "rec[0]..rec[3]"]
-    assert victim, "no process runs rec[0]..rec[3]"
+    run, report_path = start_flow(flow, tmp_path)
+    victim = wait_for_worker(run, "rec[0]..rec[3]")
     time.sleep(2.0)                               # well into the stream
-    os.kill(victim[0], signal.SIGKILL)
+    os.kill(victim, signal.SIGKILL)
     stderr = run.communicate(timeout=90)[1]
     report = json.loads(report_path.read_text())
     assert run.returncode == 1, stderr
     for channel in range(4):
         block = report["blocks"][f"rec[{channel}]"]
-        assert block["state"] == "died" and block["exit"] == "killed by SIGKILL" and block["pid"] == victim[0]
-        assert f"block 'rec[{channel}]' (pid {victim[0]}) died (killed by SIGKILL)" in stderr
+        assert block["state"] == "died" and block["exit"] == "killed by SIGKILL" and block["pid"] == victim
+        assert f"block 'rec[{channel}]' (pid {victim}) died (killed by SIGKILL)" in stderr
     for channel in range(4, 8):
         block = report["blocks"][f"rec[{channel}]"]
-        assert block["pid"] != victim[0] and block["state"] == "aborted", block
+        assert block["pid"] != victim and block["state"] == "aborted", block
     assert report["outcome"] == "failed"
     check_accounts(report)
     in_flight = sum(x["in_flight_samples"] + x["held_samples"] for x in report["links"])
