@@ -215,7 +215,10 @@ def assert_links_account(summary: dict) -> None:
 
 
 def test_three_shares_give_the_one_machine_outputs(network, tmp_path):
+    """Host left runs its four writers two to a process (copies_per_process), fed from another host."""
     flow = write_flow(tmp_path, network)
+    rule = 'per_channel = { from = "split.channels", select = "0..3" }'
+    flow.write_text(flow.read_text().replace(rule, rule + "\ncopies_per_process = 2"))
     alone = tmp_path / "one-machine"
     done = bandloom("run", flow, "--one-machine", "--out", alone, "--quiet")
     assert done.returncode == 0, done.stderr
@@ -234,6 +237,7 @@ def test_three_shares_give_the_one_machine_outputs(network, tmp_path):
     assert_links_account(sent)
     crossing = [x for x in sent["links"] if "crosses" in x]
     assert len(crossing) == 8 and all(x["crosses"] in ("to host left", "to host right") for x in crossing)
+    assert len({report(outs["left"])["blocks"][f"low[{c}]"]["pid"] for c in range(4)}) == 2
     for host in ("left", "right"):
         got = report(outs[host])
         assert got["host"] == host and got["other_hosts"]["antenna"]["outcome"] == "finished"
