@@ -37,10 +37,9 @@ import numpy as np
 import zmq
 import zmq.auth
 from bandloom.blocks.block import Chunk, StreamInfo
-from zmq.utils.monitor import recv_monitor_message
 
 from . import wire
-from .links import Inlet, LinkError, configure
+from .links import Inlet, LinkError, configure, recv_monitor_event
 from .worker_spec import LinkSpec
 
 __all__ = ["GAP_SPEED_BOUND", "MIN_GAP_BOUND", "EndpointClient", "EndpointInlet", "EndpointRefused", "Received", "secure_client"]
@@ -139,7 +138,7 @@ class EndpointClient:
         connection is let go with ``bye`` (so the endpoint sends again, first, whatever it sent that did not
         arrive), and credit is asked anew."""
         while self.monitor.poll(0):
-            event = recv_monitor_message(self.monitor)["event"]
+            event = recv_monitor_event(self.monitor)["event"]
             if event == zmq.EVENT_HANDSHAKE_SUCCEEDED:
                 self.handshakes += 1
                 if self.handshakes > 1:

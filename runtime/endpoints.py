@@ -36,11 +36,10 @@ from collections.abc import Callable
 from dataclasses import dataclass, replace
 
 import zmq
-from zmq.utils.monitor import recv_monitor_message
 
 from . import wire
 from .control import OutletStats
-from .links import POLL_MS, Aborted, Outlet, open_socket, secure_server
+from .links import POLL_MS, Aborted, Outlet, open_socket, recv_monitor_event, secure_server
 from .worker_spec import LinkSpec
 
 __all__ = ["EndpointOutlet"]
@@ -124,7 +123,7 @@ class EndpointOutlet(Outlet):
         poller.poll(timeout_ms)
         dropped = False
         while self.monitor.poll(0):
-            event = recv_monitor_message(self.monitor)["event"]
+            event = recv_monitor_event(self.monitor)["event"]
             self.connections = max(0, self.connections + (1 if event == zmq.EVENT_ACCEPTED else -1))
             dropped = dropped or event == zmq.EVENT_DISCONNECTED
         self._read_requests()

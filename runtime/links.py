@@ -57,8 +57,8 @@ from .flow.model import WhenFull
 from .keys import load_server_keys
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "Inlet", "LinkError", "MESSAGE_BYTES", "Outlet",
-           "POLL_MS", "QUEUE_BYTES", "column_major", "configure", "secure_server"]
+__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "Inlet", "LinkError", "MESSAGE_BYTES",
+           "Outlet", "POLL_MS", "QUEUE_BYTES", "column_major", "configure", "recv_monitor_event", "secure_server"]
 
 MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
 QUEUE_BYTES = 256 << 20                       # samples a link's queue holds at each end, bytes at most
@@ -67,6 +67,13 @@ POLL_MS = 200
 COLUMN_MAJOR_LINKS = 8                        # this many single-channel links share one transposed copy
 BATCH_POLL_MS = 20                            # how often a worker looks at waiting batches while idle
 
+
+
+def recv_monitor_event(monitor: zmq.Socket) -> Any:
+    """The next event of a socket monitor, as pyzmq's ``recv_monitor_message`` gives it. Its module imports
+    asyncio (about 35 ms), so it is imported here on first use: a flow with no endpoint never pays it."""
+    from zmq.utils.monitor import recv_monitor_message
+    return recv_monitor_message(monitor)
 
 class Aborted(Exception):
     """The run is being aborted; the worker stops at once."""

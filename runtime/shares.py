@@ -48,12 +48,11 @@ from typing import Any
 
 import msgpack
 import zmq
-from zmq.utils.monitor import recv_monitor_message
 
 from .control import BlockState, InletStats, OutletStats
 from .endpoint_client import HANDSHAKE_FAILED, secure_client
 from .flow import Flow
-from .links import secure_server
+from .links import recv_monitor_event, secure_server
 
 __all__ = ["HEARTBEAT_SECONDS", "SILENCE_SECONDS", "BlockView", "Peer", "RemoteProcess", "ShareError", "ShareNetwork",
            "ShareState", "ShareStatus", "flow_digest"]
@@ -276,7 +275,7 @@ class ShareNetwork:
     def read(self, now: float) -> None:
         """Take every status and connection event that has arrived."""
         while self.sub_monitor.poll(0):
-            event = recv_monitor_message(self.sub_monitor)
+            event = recv_monitor_event(self.sub_monitor)
             peer = self.by_endpoint.get(event["endpoint"].decode(errors="replace"))
             if peer is None:
                 continue
@@ -288,7 +287,7 @@ class ShareNetwork:
             elif event["event"] == zmq.EVENT_DISCONNECTED and peer.status is not None:
                 peer.dropped_at = peer.dropped_at or now
         while self.pub_monitor.poll(0):
-            recv_monitor_message(self.pub_monitor)
+            recv_monitor_event(self.pub_monitor)
             self.refused_here += 1
         while True:
             try:
