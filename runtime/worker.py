@@ -57,7 +57,8 @@ STATS_INTERVAL = 0.5
 
 
 class Worker:
-    """One block in its own process, between its inlets and outlets (see the module doc)."""
+    """One block between its inlets and outlets (see the module doc), in a process of its own or sharing
+    one with other copies of its per-channel block (``process``, a :class:`WorkerProcess`)."""
 
     def __init__(self, spec: WorkerSpec, process: WorkerProcess | None = None) -> None:
         self.spec = spec
