@@ -239,7 +239,7 @@ def _types_in(flow_hint: str) -> list[str]:
 def _preload(type_names: list[str], *, quietly: bool = False) -> str:
     from .plugins import load_registry
 
-    registry = load_registry()
+    registry = load_registry(only=type_names)
     for name in type_names:
         cls = registry.types.get(name)
         if cls is None:
