@@ -203,9 +203,8 @@ class Supervisor:
         a process (``copies_per_process``)."""
         spec_path = os.path.join(self.folder, f"spec-{self.workers_started}.json")   # in flow order; restarts after
         self.workers_started += 1
-        records = [self.blocks.get(inst.name) for inst in group]
-        with open(spec_path, "w") as handle:
-            handle.write(specs_to_json([self.worker_spec(inst, record) for inst, record in zip(group, records)]))
+        with open(spec_path, "w") as handle:     # a restart's record (its links resume), or none yet
+            handle.write(specs_to_json([self.worker_spec(inst, self.blocks.get(inst.name)) for inst in group]))
         # Only the block that reads standard input gets it, and only the one that
         # writes data to standard output gets that; the rest print to stderr.
         assert self.launcher is not None

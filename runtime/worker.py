@@ -236,7 +236,12 @@ class Worker:
                     poller.unregister(sock)
             holding = self.flush_due_batches()
             self.maybe_stats()
-        self.emit(self.timed(block.finish))
+        self.finish()
+
+    def finish(self) -> None:
+        """Every input has ended: let the block give what it still holds, and pass that on."""
+        assert self.block is not None
+        self.emit(self.timed(self.block.finish))
 
     def end_streams(self) -> None:
         """Send end of stream on every output."""
@@ -349,7 +354,7 @@ class WorkerProcess:
                 break
             if message is None:
                 continue
-            for worker in self.workers:
+            for worker in self.workers:        # before the flags below change: a source hears its first stop
                 worker.hear(message)
             if message.word is ControlWord.ABORT:
                 self.abort = True
@@ -403,8 +408,7 @@ class WorkerProcess:
                         del by_socket[sock]
                     if not open_inlets[worker]:
                         del open_inlets[worker]
-                        assert worker.block is not None
-                        worker.emit(worker.timed(worker.block.finish))
+                        worker.finish()
                         worker.end_streams()
                         if worker.needs_release:
                             worker.send_stats(WorkerEvent.ENDING)

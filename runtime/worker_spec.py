@@ -89,28 +89,34 @@ class WorkerSpec:
     inputs: dict[str, LinkSpec] = field(default_factory=dict)
     outputs: dict[str, list[LinkSpec]] = field(default_factory=dict)
 
-    def to_json(self) -> str:
+    def to_dict(self) -> dict[str, Any]:
         values = {f.name: getattr(self, f.name) for f in fields(self)}
         values.update(inputs={port: spec.to_dict() for port, spec in self.inputs.items()},
                       outputs={port: [spec.to_dict() for spec in specs] for port, specs in self.outputs.items()})
-        return json.dumps(values)
+        return values
 
     @classmethod
-    def from_json(cls, text: str) -> WorkerSpec:
-        values = json.loads(text)
+    def from_dict(cls, data: dict[str, Any]) -> WorkerSpec:
+        values = dict(data)
         values.update(inputs={port: LinkSpec.from_dict(d) for port, d in values["inputs"].items()},
                       outputs={port: [LinkSpec.from_dict(d) for d in ds] for port, ds in values["outputs"].items()})
         return cls(**values)
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict())
+
+    @classmethod
+    def from_json(cls, text: str) -> WorkerSpec:
+        return cls.from_dict(json.loads(text))
 
 
 def specs_to_json(specs: list[WorkerSpec]) -> str:
     """The spec file of one worker process: one block's spec, or a list of them for copies of a per-channel
     block that share a process (``copies_per_process``)."""
-    return specs[0].to_json() if len(specs) == 1 else "[" + ", ".join(spec.to_json() for spec in specs) + "]"
+    return specs[0].to_json() if len(specs) == 1 else json.dumps([spec.to_dict() for spec in specs])
 
 
 def specs_from_json(text: str) -> list[WorkerSpec]:
     """The blocks of one worker process, from what :func:`specs_to_json` wrote."""
-    if text.lstrip().startswith("["):
-        return [WorkerSpec.from_json(json.dumps(item)) for item in json.loads(text)]
-    return [WorkerSpec.from_json(text)]
+    data = json.loads(text)
+    return [WorkerSpec.from_dict(item) for item in data] if isinstance(data, list) else [WorkerSpec.from_dict(data)]
