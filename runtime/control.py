@@ -145,7 +145,9 @@ class OutletStats:
     next_index: int = 0          # absolute index after the last row sent
     blocked_seconds: float = 0.0
     held_rows: int = 0           # offered, waiting to fill a message (see links.Outlet); sent at end of stream
-    copied_bytes: int = 0        # copied by the outlet to gather the link's channels or change their type
+    copied_bytes: int = 0        # copied by the outlet: to gather the link's channels, change their type, batch
+                                 # rows, or place them in shared memory
+    shared_messages: int = 0     # of messages: their samples went through shared memory (see shared_rings)
     # endpoints for outside programs only (None on links between blocks):
     delivered_rows: int | None = None    # acknowledged by a consumer
     consumers: int = 0                   # consumers that attached, one after another

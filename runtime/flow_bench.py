@@ -18,10 +18,11 @@ Method (docs/performance.md):
   finish) over the time from its first samples to its end, and its process's
   CPU time (every thread, user and system) per input sample, from the long run's
   extra CPU over its extra samples; per link, the
-  bytes it carried and the bytes its sender copied (to gather channels or
-  change their type), per input sample of the flow. Each byte on a local
-  (ipc) link is also copied twice by the kernel, once into the socket and
-  once out.
+  bytes it carried and the bytes its sender copied (to gather channels,
+  change their type, batch rows or place them in shared memory), per input
+  sample of the flow, and the share of its messages that went through shared
+  memory. Each byte that goes through a socket instead is also copied twice
+  by the kernel, once into the socket and once out.
 
 Ratios compare between machines; seconds do not. No test asserts on them.
 """
@@ -202,7 +203,9 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         row_bytes = link.stream.width * link.stream.dtype.itemsize
         links.append({"link": counted["link"], "bytes_per_input_sample": counted["sent_samples"] * row_bytes / per_sample,
                       "copied_bytes_per_input_sample": counted["copied_bytes"] / per_sample,
-                      "messages": counted["sent_messages"]})
+                      "messages": counted["sent_messages"],
+                      "shared_memory_fraction": (counted.get("shared_memory_messages", 0)
+                                                 / max(1, counted["sent_messages"]))})
     result: dict[str, Any] = {
         "flow": str(args.flow), "processes": processes,
         "short": {"input_samples": short.input_samples, "seconds": short.seconds, "startup_seconds": short.startup_seconds},
@@ -229,10 +232,11 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         for b in blocks] + [["(all)", "", "", round(cpu_total, 1)]]) + "\n")
     out.write(f"{len(os.sched_getaffinity(0))} cores give {engineering(len(os.sched_getaffinity(0)) * 1e9 / cpu_total, 'sps')} "
               f"at {cpu_total:.1f} ns of CPU per input sample, if nothing else waited.\n\n")
-    out.write(render_rows(["link", "messages", "bytes / input sample", "copied bytes / input sample"], [
-        [x["link"], x["messages"], round(x["bytes_per_input_sample"], 2), round(x["copied_bytes_per_input_sample"], 2)]
-        for x in links]) + "\n")
+    out.write(render_rows(["link", "messages", "through shared memory", "bytes / input sample",
+                           "copied bytes / input sample"], [
+        [x["link"], x["messages"], f"{x['shared_memory_fraction']:.0%}", round(x["bytes_per_input_sample"], 2),
+         round(x["copied_bytes_per_input_sample"], 2)] for x in links]) + "\n")
     out.write("Steady rate: the long run's extra samples over its extra seconds; start-up: from the command to "
-              "the first samples at every sink (short run). Each byte on an ipc link is copied twice more by the "
-              "kernel.\n")
+              "the first samples at every sink (short run). Each byte that goes through a socket (not shared "
+              "memory) is copied twice more by the kernel.\n")
     return 0

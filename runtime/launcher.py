@@ -16,7 +16,9 @@ The protocol, one line of text each way over a socket pair the supervisor
 made (the launcher's end is file descriptor ``FD``):
 
 * ``preload TYPE ...`` -- import these block types and warm them; answered ``ready``.
-* ``start SPEC STDIN STDOUT`` -- fork a worker for the spec file ``SPEC``;
+* ``start SPEC STDIN STDOUT`` -- fork a worker for the spec file ``SPEC``
+  (first making the shared-memory ring of each of its links that asks for
+  one and has none yet, so that both ends inherit it: :mod:`.shared_rings`);
   ``STDIN`` is ``keep`` (the block reads the run's standard input) or
   ``null``; ``STDOUT`` is ``keep`` (the block writes data to it) or ``log``
   (standard error). Answered ``pid PID``.
@@ -250,6 +252,23 @@ def _preload(type_names: list[str], *, quietly: bool = False) -> str:
     return "ready"
 
 
+def _make_rings(spec_path: str) -> None:
+    """The shared-memory rings of the links in a worker's spec file that have none yet (see
+    :mod:`.shared_rings`), made before the worker is forked so that it and the far end inherit them. A spec
+    file that cannot be read is the worker's to report."""
+    from .shared_rings import make_ring
+    from .worker_spec import specs_from_json
+    try:
+        with open(spec_path) as handle:
+            specs = specs_from_json(handle.read())
+    except (OSError, ValueError, TypeError, KeyError):
+        return
+    for spec in specs:
+        for link in [*spec.inputs.values(), *(end for ends in spec.outputs.values() for end in ends)]:
+            if link.shared_bytes:
+                make_ring(link.link, link.shared_bytes)
+
+
 def _child(spec_path: str, stdin: str, stdout: str, launcher_fd: int) -> None:
     """In the forked child: standard streams as the block needs them, then the worker; never returns."""
     code = 1
@@ -320,6 +339,7 @@ def main(argv: list[str] | None = None) -> int:
                     except Exception as error:
                         out.append(f"{type(error).__name__}: {error}")
                 elif word == "start" and len(rest) == 3:
+                    _make_rings(rest[0])
                     sys.stdout.flush()
                     sys.stderr.flush()
                     pid = os.fork()

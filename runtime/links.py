@@ -33,6 +33,14 @@
   them (``resume_index``); its inlets count what nobody read in between as
   ``lost_at_restart``, while the block itself sees a first chunk whose
   ``dropped`` covers everything before it (it has seen nothing).
+* A link between two blocks that the same launcher forked passes its samples
+  through a shared-memory ring (:mod:`.shared_rings`) when the launcher made
+  one (``LinkSpec.shared_bytes``): its messages carry a third frame, a
+  reference into the ring, and an empty payload; a message that does not fit
+  in the ring goes inline as on any other link, with the reference frame
+  saying so. The sender waits for room in the ring as for room in the
+  socket, and a ``drop`` link drops what does not fit. Such links never
+  reach outside programs: docs/wire.md is unchanged for them.
 * Received messages are decoded with :mod:`.wire` (size limits, whitelists).
 * A socket whose bind or connect fails is closed at once and the failure
   names the link (a socket left open would keep its process from exiting).
@@ -55,6 +63,7 @@ from . import wire
 from .control import InletStats, OutletStats
 from .flow.model import WhenFull
 from .keys import load_server_keys
+from .shared_rings import RingReader, RingWriter, inherited_ring
 from .worker_spec import LinkSpec
 
 __all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "Inlet", "LinkError", "MESSAGE_BYTES",
@@ -236,9 +245,13 @@ class Outlet(_LinkEnd):
         self.stream = spec.stream
         self.when_full = spec.when_full
         self.should_abort = should_abort
+        fd = inherited_ring(spec.link) if spec.shared_bytes and spec.consumer else None
+        self.ring = RingWriter(fd, spec.label) if fd is not None else None     # before the socket: may fail
         self._open(context, spec)
         # a long queue gets smaller messages, so that queue x message stays within QUEUE_BYTES
         message_bytes = min(MESSAGE_BYTES, QUEUE_BYTES // max(1, spec.queue))
+        if self.ring is not None:          # messages a quarter of the ring at most: four can be in flight
+            message_bytes = min(message_bytes, self.ring.capacity // 4)
         row_bytes = self.stream.width * self.stream.dtype.itemsize
         self.rows_per_message = max(1, message_bytes // row_bytes)
         self.batch_seconds = spec.batch_seconds
@@ -249,6 +262,7 @@ class Outlet(_LinkEnd):
         self._held_discontinuity = False
         self._held_since = 0.0
         self.copied_bytes = 0
+        self.shared_messages = 0                      # of messages: their rows went through the ring
         self.next_index = spec.resume_index or 0    # index after the last row sent
         self.offered_index = self.next_index        # index after the last row offered, sent or dropped
         self.seq = spec.resume_seq
@@ -369,8 +383,9 @@ class Outlet(_LinkEnd):
         flags = wire.FLAG_DISCONTINUITY if (gap or chunk.discontinuity or self.restarted) else 0
         header = self._header.encode(seq=self.seq, first_index=chunk.first_index, count=count, flags=flags,
                                     dropped=gap)
-        if not self.attached or not self._send([header, data], droppable=self.when_full is WhenFull.DROP,
-                                               seq=self.seq, rows=count):
+        droppable = self.when_full is WhenFull.DROP
+        frames, in_ring = self._frames(header, data, droppable=droppable) if self.attached else (None, False)
+        if frames is None or not self._send(frames, droppable=droppable, seq=self.seq, rows=count):
             self.dropped_rows += count
             self.dropped_messages += 1
             self.down_rows += 0 if self.attached else count
@@ -378,10 +393,44 @@ class Outlet(_LinkEnd):
         self.seq += 1
         self.restarted = False
         self.messages += 1
+        self.shared_messages += in_ring
         self.rows += count
         self.discontinuities += bool(flags)
         self.missing_rows += gap
         self.next_index = chunk.first_index + count
+
+    def _frames(self, header: bytes, data: np.ndarray, *, droppable: bool) -> tuple[list | None, bool]:
+        """The frames of one message, and whether its rows went into the link's ring. On a link with a
+        ring, they are copied into it when there is room, waiting for room as for a full socket, else they
+        go inline (see :mod:`.shared_rings`). No frames when the message is dropped: the ring is full on a
+        ``drop`` link, or the consumer went down while we waited."""
+        ring = self.ring
+        if ring is None:
+            return [header, data], False
+        nbytes = data.nbytes
+        if not ring.has_room(nbytes) and ring.should_wait(nbytes):
+            if droppable or not self._wait_for_ring(ring, nbytes):
+                return None, False
+        if ring.has_room(nbytes):
+            self.copied_bytes += nbytes
+            return [header, b"", ring.place(data)], True
+        return [header, data, ring.inline_reference()], False
+
+    def _wait_for_ring(self, ring: RingWriter, nbytes: int) -> bool:
+        """Wait until the consumer frees room for ``nbytes`` in the ring (or it need not be waited for);
+        False if the consumer went down meanwhile. Checks at 0.2 ms at first, then every 5 ms at most."""
+        started, pause = time.monotonic(), 0.0002
+        try:
+            while not ring.has_room(nbytes) and ring.should_wait(nbytes):
+                if self.should_abort():
+                    raise Aborted()
+                if not self.attached:
+                    return False
+                time.sleep(pause)
+                pause = min(2 * pause, 0.005)
+        finally:
+            self.blocked_seconds += time.monotonic() - started
+        return True
 
     def detach(self) -> None:
         """The consumer is down: drop and count until :meth:`attach`."""
@@ -392,6 +441,8 @@ class Outlet(_LinkEnd):
         if self.attached:
             return
         self.attached = True
+        if self.ring is not None:
+            self.ring.consumer_restarted()
         if self.ended:
             self._send_end()
 
@@ -410,7 +461,8 @@ class Outlet(_LinkEnd):
         flags = wire.FLAG_END | (wire.FLAG_DISCONTINUITY if gap or self.restarted else 0)
         header = self._header.encode(seq=self.seq, first_index=self.next_index + gap, count=0, flags=flags,
                                     dropped=gap)
-        self._send([header, b""], droppable=False, seq=self.seq, rows=0)
+        frames = [header, b""] if self.ring is None else [header, b"", self.ring.inline_reference()]
+        self._send(frames, droppable=False, seq=self.seq, rows=0)
         self.missing_rows += gap
         self.discontinuities += bool(gap)
         self.next_index += gap
@@ -420,7 +472,7 @@ class Outlet(_LinkEnd):
                            dropped_messages=self.dropped_messages, discontinuities=self.discontinuities,
                            missing_rows=self.missing_rows, down_rows=self.down_rows, next_index=self.next_index,
                            blocked_seconds=round(self.blocked_seconds, 3), held_rows=self._held,
-                           copied_bytes=self.copied_bytes)
+                           copied_bytes=self.copied_bytes, shared_messages=self.shared_messages)
 
     def close(self, *, discard: bool = False) -> None:
         """Close; queued messages are still delivered unless ``discard`` (abort, error) or the consumer
@@ -428,6 +480,8 @@ class Outlet(_LinkEnd):
         self.sock.close(linger=0 if discard or not self.attached else None)
         if self.authenticator:
             self.authenticator.stop()
+        if self.ring is not None:
+            self.ring.close()
 
 
 class Inlet(_LinkEnd):
@@ -447,6 +501,7 @@ class Inlet(_LinkEnd):
         self.resumed = spec.resume_index is not None
         self.lost_at_restart = 0
         self.ended = False
+        self.ring: RingReader | None = None      # mapped at the first message that refers to it
 
     @property
     def rows(self) -> int:
@@ -468,14 +523,26 @@ class Inlet(_LinkEnd):
         an end of stream that counts lost rows first returns them as an empty chunk). Raises
         wire.WireError."""
         frames = self.sock.recv_multipart(copy=False)
-        if len(frames) != 2:
-            raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
+        if len(frames) != 2 and not (len(frames) == 3 and self.spec.shared_bytes):
+            raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)"
+                                 + (" or 3 (header, nothing, ring reference)" if self.spec.shared_bytes else ""))
         header = wire.decode_header(frames[0].buffer)
         end = bool(header["flags"] & wire.FLAG_END)
         if not end and (header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width):
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "
                                  f"was set up for {self.stream.sample_type} x {self.stream.width}")
-        data = None if end else wire.decode_payload(header, frames[1].buffer)
+        in_ring = None
+        if len(frames) == 3:
+            expected = 0 if end else header["count"] * header["width"] * self.stream.dtype.itemsize
+            in_ring = self._ring().take(frames[2].buffer, self.stream.dtype, expected)
+            if in_ring is not None and len(frames[1]):
+                raise wire.WireError(f"message carries {len(frames[1])} bytes of samples and a ring reference")
+        if end:
+            data = None
+        elif in_ring is not None:
+            data = in_ring if header["width"] == 1 else in_ring.reshape(header["count"], header["width"])
+        else:
+            data = wire.decode_payload(header, frames[1].buffer)
         declared = header["dropped"]
         gap = self.continuity.take(header)          # rows skipped without a word are counted too
         for_block = header["first_index"] - self.block_index      # the gap as the block sees it
@@ -497,6 +564,14 @@ class Inlet(_LinkEnd):
         return Chunk(data, header["first_index"],
                      discontinuity=bool(header["flags"] & wire.FLAG_DISCONTINUITY or for_block),
                      dropped=for_block)
+
+    def _ring(self) -> RingReader:
+        if self.ring is None:
+            fd = inherited_ring(self.id)
+            if fd is None:
+                raise wire.WireError("message refers to a shared-memory ring, and this link has none")
+            self.ring = RingReader(fd, self.spec.label)
+        return self.ring
 
     def processed(self) -> None:
         """The block has taken the chunk last received (and what it made of it is sent on). Nothing to do

@@ -90,6 +90,7 @@ def summarise(flow: Flow, blocks: Mapping[str, BlockRecord], *, outcome: str, se
             "dropped_messages": sent.dropped_messages,
             "discontinuities": sent.discontinuities, "missing_samples": sent.missing_rows,
             "last_index": sent.next_index, "held_samples": sent.held_rows, "copied_bytes": sent.copied_bytes,
+            "shared_memory_messages": sent.shared_messages,
         })
         if endpoint:
             links[-1].update(delivered_samples=sent.delivered_rows, consumers=sent.consumers,

@@ -28,6 +28,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from enum import Enum
 from pathlib import Path
@@ -40,6 +41,7 @@ from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessE
 from .flow import FailurePolicy, Flow, Instance, Link, OnFailure, process_groups
 from .launcher import LaunchedProcess, Launcher
 from .run_report import StatusDisplay, describe_exit, summarise
+from .shared_rings import ring_bytes
 from .shares import HEARTBEAT_SECONDS, SILENCE_SECONDS, BlockView, RemoteProcess, ShareNetwork, ShareState, ShareStatus
 from .worker_spec import LinkSpec, WorkerSpec, specs_to_json
 
@@ -123,12 +125,14 @@ class BlockRecord:
 
 
 def link_specs(folder: str, inst: Instance, *, flow: Flow | None = None, earlier: StatsMessage | None = None,
-               down: frozenset[str] = frozenset()) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
+               down: frozenset[str] = frozenset(), rings: Mapping[int, int] | None = None,
+               ) -> tuple[dict[str, LinkSpec], dict[str, list[LinkSpec]]]:
     """The ends of ``inst``'s links as its worker opens them. For a restarted block, ``earlier`` holds
     its predecessors' counters (each end resumes where they left it); ``down`` names the blocks that
     are down now (outputs to them start detached). A link that crosses to another host (``flow`` given,
     run as shares) is an endpoint its source's host serves on the link's port, which the consumer's
-    host connects to, both with the hosts' keys."""
+    host connects to, both with the hosts' keys. ``rings`` gives the links that pass their samples through
+    shared memory the size of their ring (see :func:`shared_ring_sizes`)."""
     def spec(link: Link, *, sending: bool) -> LinkSpec:
         resume: dict = {}
         if earlier is not None:
@@ -149,10 +153,23 @@ def link_specs(folder: str, inst: Instance, *, flow: Flow | None = None, earlier
                         when_full=link.options.when_full, keys=keys,
                         batch_seconds=link.options.latency if sending and link.target else 0.0,
                         consumer=link.target if sending else None,
-                        attached=not (sending and link.target in down), **resume)
+                        attached=not (sending and link.target in down),
+                        shared_bytes=(rings or {}).get(link.id, 0), **resume)
     inputs = {port: spec(link, sending=False) for port, link in inst.inputs.items()}
     outputs = {port: [spec(link, sending=True) for link in links] for port, links in inst.outputs.items()}
     return inputs, outputs
+
+
+def shared_ring_sizes(flow: Flow, local: Mapping[str, Instance]) -> dict[int, int]:
+    """The links of this machine's blocks that pass their samples through shared memory, each with its
+    ring's size: every link between two of ``local`` (forked by one launcher) over the run's private
+    folder, unless the flow says ``shared_memory = false``. The rings together hold at most
+    :data:`.shared_rings.TOTAL_RING_BYTES`."""
+    if not flow.shared_memory:
+        return {}
+    chosen = [link for link in flow.links
+              if link.target is not None and link.endpoint is None and link.source in local and link.target in local]
+    return {link.id: ring_bytes(len(chosen)) for link in chosen}
 
 
 class Supervisor:
@@ -186,12 +203,13 @@ class Supervisor:
         self.stop_signal = 0          # SIGINT or SIGTERM, once one asked the run to stop
         self.last_said: dict[bytes, float] = {}      # control message -> when it was last said (see tell)
         self.launcher_lost = ""       # why the run stopped when the worker launcher died under it
+        self.rings = shared_ring_sizes(flow, self.local)    # links through shared memory: ring bytes
 
     def worker_spec(self, inst: Instance, record: BlockRecord | None = None) -> WorkerSpec:
         """What ``inst``'s worker gets; for a restart (``record`` given) its links resume."""
         down = frozenset(name for name, r in self.blocks.items() if r.down)
         inputs, outputs = link_specs(self.folder, inst, flow=self.flow if self.here else None,
-                                     earlier=record.earlier if record else None, down=down)
+                                     earlier=record.earlier if record else None, down=down, rings=self.rings)
         return WorkerSpec(
             name=inst.name, type_name=inst.type_name, params=inst.params, placeholders=inst.placeholders,
             flow_path=str(self.flow.path.resolve()), output_dir=str(self.output_dir), inputs=inputs,

@@ -33,7 +33,9 @@ class LinkSpec:
     where its predecessor's end of this link stood at its last report (None:
     a first instance, starting at 0), and ``attached`` is False on an output
     whose consumer is down when this worker starts (see :class:`.links.Outlet`). ``batch_seconds`` is the
-    link's ``latency`` (outputs to other blocks only).
+    link's ``latency`` (outputs to other blocks only). ``shared_bytes`` is the data capacity of the link's
+    shared-memory ring (see :mod:`.shared_rings`; 0: none), on both ends of a link between two blocks whose
+    workers the same launcher forks.
     """
 
     link: int
@@ -50,6 +52,7 @@ class LinkSpec:
     attached: bool = True
     resume_index: int | None = None
     resume_seq: int = 0
+    shared_bytes: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         values = {f.name: getattr(self, f.name) for f in fields(self)}

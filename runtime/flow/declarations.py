@@ -41,6 +41,8 @@ FLOW_OPTIONS: tuple[Param, ...] = (
           "links between hosts are encrypted and authenticated with it", default=None,
           rule="a folder made by 'bandloom keys', relative to the flow file"),
     Param("insecure", "bool", "with [hosts.NAME]: links between hosts go in the clear, unauthenticated", default=False),
+    Param("shared_memory", "bool", "links between blocks on one machine pass their samples through shared memory "
+          "(false: through their sockets, copied by the kernel)", default=True),
 )
 FLOW_KEYS = tuple(p.name for p in FLOW_OPTIONS)
 PER_CHANNEL_KEYS = ("from", "select", "input", "tolerance")

@@ -65,6 +65,7 @@ def check_flow(mapping: Mapping[str, Any], registry: Registry, *, path: str | Pa
         raise FlowErrors(log.problems)
     return Flow(path=path, name=tables.meta.get("name") or path.stem, description=tables.meta.get("description", ""),
                 accept_loss=bool(tables.meta.get("accept_loss")),
+                shared_memory=bool(tables.meta.get("shared_memory", True)),
                 instances=instances, links=expanded, hosts=tables.hosts, host_keys=tables.host_keys,
                 hosts_insecure=bool(tables.hosts and tables.meta.get("insecure")))
 

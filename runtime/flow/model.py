@@ -159,6 +159,7 @@ class Flow:
     instances: dict[str, Instance]
     links: list[Link]
     accept_loss: bool = False        # [flow] accept_loss: lost samples do not change the exit status
+    shared_memory: bool = True       # [flow] shared_memory: local links pass samples through shared memory
     hosts: dict[str, Host] = field(default_factory=dict)
     host_keys: str | None = None     # [flow] keys: the folder every host holds a copy of
     hosts_insecure: bool = False     # [flow] insecure: links between hosts in the clear
