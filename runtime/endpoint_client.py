@@ -92,6 +92,7 @@ class EndpointClient:
         self.expect = expect
         self.credit = max(2, credit)          # one message in hand, one more on its way: never a stall
         self.continuity = wire.Continuity(next_index=start_index)
+        self.headers = wire.HeaderDecoder()
         self.duplicates = 0
         self.handshake_failures = 0
         self.handshakes = 0
@@ -178,7 +179,7 @@ class EndpointClient:
             return None
         if len(frames) != 2:
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)")
-        header = wire.decode_header(frames[0].buffer)
+        header = self.headers.decode(frames[0].buffer)
         if header["flags"] & wire.FLAG_REFUSED:
             raise EndpointRefused(f"{self.endpoint} refused this consumer: {header.get('reason', 'no reason given')}")
         c = self.continuity

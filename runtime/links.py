@@ -502,6 +502,7 @@ class Inlet(_LinkEnd):
         self.lost_at_restart = 0
         self.ended = False
         self.ring: RingReader | None = None      # mapped at the first message that refers to it
+        self.headers = wire.HeaderDecoder()
 
     @property
     def rows(self) -> int:
@@ -526,7 +527,7 @@ class Inlet(_LinkEnd):
         if len(frames) != 2 and not (len(frames) == 3 and self.spec.shared_bytes):
             raise wire.WireError(f"message has {len(frames)} frames, not 2 (header, samples)"
                                  + (" or 3 (header, nothing, ring reference)" if self.spec.shared_bytes else ""))
-        header = wire.decode_header(frames[0].buffer)
+        header = self.headers.decode(frames[0].buffer)
         end = bool(header["flags"] & wire.FLAG_END)
         if not end and (header["sample_type"] != self.stream.sample_type or header["width"] != self.stream.width):
             raise wire.WireError(f"message carries {header['sample_type']} x {header['width']}, the link "

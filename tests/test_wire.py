@@ -179,3 +179,34 @@ def test_a_header_template_gives_the_header_docs_wire_md_specifies(seq, first, c
                 wire.encode_header(**values, reason=reason, **fixed)):
         assert msgpack.unpackb(raw, raw=False) == expected
         assert wire.decode_header(raw) == expected
+
+
+def _outcome(decode, raw):
+    try:
+        return decode(raw)
+    except wire.WireError as error:
+        return f"WireError: {error}"
+
+
+@settings(max_examples=400, deadline=None)
+@given(tail=st.dictionaries(st.one_of(st.sampled_from(FIELDS + ["reason"]), st.text(max_size=6)), VALUES,
+                            max_size=8),
+       cut=st.integers(0, 40), junk=st.binary(max_size=6))
+def test_a_header_decoder_gives_what_a_whole_decode_gives(tail, cut, junk):
+    """A link's HeaderDecoder, having learned a sender's constant part, unpacks only the rest of each
+    header; for any bytes after that part -- well formed, hostile, cut short or followed by junk -- it returns
+    exactly what decode_header returns, or refuses with exactly its error."""
+    fixed = dict(stream="split.channels -> sink.samples", width=3, sample_type="cf32", sample_rate=25e3,
+                 centre_frequency=156.8e6, channels=[0, 1, 2], channel_frequencies=[0.0, 25e3, -25e3])
+    template = wire.HeaderTemplate(**fixed)
+    decoder = wire.HeaderDecoder()
+    good = template.encode(seq=0, first_index=0, count=4)
+    assert decoder.decode(good) == wire.decode_header(good)
+    prefix = decoder._prefix
+    assert prefix and good.startswith(prefix)
+    packer = msgpack.Packer(use_bin_type=True)
+    body = b"".join(packer.pack(k) + packer.pack(v) for k, v in tail.items())
+    for raw in (prefix + body, prefix + body[:cut], prefix + body + junk,
+                good, template.encode(seq=1, first_index=4, count=4, reason="r")):
+        assert _outcome(decoder.decode, raw) == _outcome(wire.decode_header, raw)
+    assert decoder.short_decodes >= 1
