@@ -16,9 +16,10 @@ The protocol, one line of text each way over a socket pair the supervisor
 made (the launcher's end is file descriptor ``FD``):
 
 * ``preload TYPE ...`` -- import these block types and warm them; answered ``ready``.
-* ``start SPEC STDIN STDOUT`` -- fork a worker for the spec file ``SPEC``
-  (first making the shared-memory ring of each of its links that asks for
-  one and has none yet, so that both ends inherit it: :mod:`.shared_rings`);
+* ``start SPEC STDIN STDOUT [RINGS]`` -- fork a worker for the spec file ``SPEC``
+  (first making the shared-memory ring of each of its links that has none
+  yet, so that both ends inherit it: :mod:`.shared_rings`; ``RINGS`` is
+  ``LINK:BYTES`` pairs joined by commas);
   ``STDIN`` is ``keep`` (the block reads the run's standard input) or
   ``null``; ``STDOUT`` is ``keep`` (the block writes data to it) or ``log``
   (standard error). Answered ``pid PID``.
@@ -44,6 +45,7 @@ import socket
 import subprocess
 import sys
 import time
+from collections.abc import Mapping
 from pathlib import Path
 from types import TracebackType
 
@@ -195,11 +197,15 @@ class Launcher:
         if reply != "ready":
             raise LaunchError(f"the worker launcher could not preload {type_names}: {reply}")
 
-    def start(self, spec_path: str, *, keep_stdin: bool, keep_stdout: bool) -> LaunchedProcess:
-        """Fork a worker for the spec file; its standard input and output as the block needs them."""
+    def start(self, spec_path: str, *, keep_stdin: bool, keep_stdout: bool,
+              rings: Mapping[int, int] | None = None) -> LaunchedProcess:
+        """Fork a worker for the spec file; its standard input and output as the block needs them; ``rings``
+        are its links' shared-memory rings (link id: bytes), made first where the far end has not made them."""
         if any(c.isspace() for c in spec_path):
             raise LaunchError(f"spec path {spec_path!r} has white space in it")
-        self._say(f"start {spec_path} {'keep' if keep_stdin else 'null'} {'keep' if keep_stdout else 'log'}")
+        ring_list = ",".join(f"{int(link)}:{int(size)}" for link, size in sorted((rings or {}).items()))
+        self._say(f"start {spec_path} {'keep' if keep_stdin else 'null'} {'keep' if keep_stdout else 'log'} "
+                  f"{ring_list}".rstrip())
         reply = self._reply("start")
         word, _, rest = reply.partition(" ")
         if word != "pid":
@@ -252,21 +258,14 @@ def _preload(type_names: list[str], *, quietly: bool = False) -> str:
     return "ready"
 
 
-def _make_rings(spec_path: str) -> None:
-    """The shared-memory rings of the links in a worker's spec file that have none yet (see
-    :mod:`.shared_rings`), made before the worker is forked so that it and the far end inherit them. A spec
-    file that cannot be read is the worker's to report."""
-    from .shared_rings import make_ring
-    from .worker_spec import specs_from_json
-    try:
-        with open(spec_path) as handle:
-            specs = specs_from_json(handle.read())
-    except (OSError, ValueError, TypeError, KeyError):
-        return
-    for spec in specs:
-        for link in [*spec.inputs.values(), *(end for ends in spec.outputs.values() for end in ends)]:
-            if link.shared_bytes:
-                make_ring(link.link, link.shared_bytes)
+def _make_rings(rings: str) -> None:
+    """The shared-memory rings a ``start`` line lists (``LINK:BYTES,...``) that are not made yet (see
+    :mod:`.shared_rings`): made before the worker is forked, so that it and the far end inherit them."""
+    from .shared_rings import MAX_RING_BYTES, make_ring
+    for pair in filter(None, rings.split(",")):
+        link, _, size = pair.partition(":")
+        if link.isdigit() and size.isdigit() and 0 < int(size) <= MAX_RING_BYTES:
+            make_ring(int(link), int(size))
 
 
 def _child(spec_path: str, stdin: str, stdout: str, launcher_fd: int) -> None:
@@ -338,8 +337,8 @@ def main(argv: list[str] | None = None) -> int:
                         out.append(_preload(rest))
                     except Exception as error:
                         out.append(f"{type(error).__name__}: {error}")
-                elif word == "start" and len(rest) == 3:
-                    _make_rings(rest[0])
+                elif word == "start" and len(rest) in (3, 4):
+                    _make_rings(rest[3] if len(rest) == 4 else "")
                     sys.stdout.flush()
                     sys.stderr.flush()
                     pid = os.fork()

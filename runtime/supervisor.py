@@ -227,7 +227,9 @@ class Supervisor:
         # writes data to standard output gets that; the rest print to stderr.
         assert self.launcher is not None
         first = group[0].cls
-        return self.launcher.start(spec_path, keep_stdin=first.uses_stdin, keep_stdout=first.uses_stdout)
+        ends = [link for inst in group for link in [*inst.inputs.values(), *(x for xs in inst.outputs.values() for x in xs)]]
+        rings = {link.id: self.rings[link.id] for link in ends if link.id in self.rings}
+        return self.launcher.start(spec_path, keep_stdin=first.uses_stdin, keep_stdout=first.uses_stdout, rings=rings)
 
     # -- the run -------------------------------------------------------------------------------
     def run(self) -> RunOutcome:
