@@ -246,3 +246,15 @@ def test_many_single_channel_links_share_one_transposed_copy(ends):
         assert np.array_equal(inlet.receive().data, frames[:, c])
         assert outlet.stats().copied_bytes == frames[:, c].nbytes
     assert column_major(chunk, outlets[:width - 1]) == [None] * (width - 1)     # too few to be worth it
+
+
+@pytest.mark.parametrize("frames, width", [(1, 8), (7, 64), (1000, 64), (4099, 8), (300, 1024), (5, 70000)])
+@pytest.mark.parametrize("dtype", [np.complex64, np.float32])
+def test_a_tiled_transpose_equals_numpys(frames, width, dtype):
+    """links.transposed copies a tile of rows at a time; the result is numpy's own ``data.T``, contiguous,
+    for any shape (a last tile cut short, one row, more columns than a tile holds) and for a strided view."""
+    from bandloom.runtime.links import transposed
+    rng = np.random.default_rng(frames * width)
+    data = rng.standard_normal((frames, 2 * width)).astype(np.float32).view(dtype)[:, :width]
+    ours = transposed(data)
+    assert ours.flags["C_CONTIGUOUS"] and ours.dtype == data.dtype and np.array_equal(ours, data.T)
