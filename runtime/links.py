@@ -362,7 +362,7 @@ class Outlet(_LinkEnd):
         if not self._held:
             self._held_first, self._held_discontinuity = first_index, discontinuity
             self._held_since = time.monotonic()
-            self._batch = np.empty((self.batch_rows,) + data.shape[1:], dtype=self.stream.dtype)
+            self._batch = self._new_batch(data.shape[1:])
         assert self._batch is not None
         self._batch[self._held:self._held + len(data)] = data
         self.copied_bytes += self._batch[:len(data)].nbytes
@@ -370,6 +370,16 @@ class Outlet(_LinkEnd):
         self._held_end = first_index + len(data)
         if self._held == self.batch_rows or time.monotonic() - self._held_since >= self.batch_seconds:
             self.flush()
+
+    def _new_batch(self, row_shape: tuple[int, ...]) -> np.ndarray:
+        """Room for a batch of rows: in the link's ring when it has room (the batch is then sent from where
+        it was filled, with no copy more), else in this process's memory."""
+        shape = (self.batch_rows,) + row_shape
+        if self.ring is not None:
+            room = self.ring.reserve(self.batch_rows * self.stream.width * self.stream.dtype.itemsize)
+            if room is not None:
+                return room.view(self.stream.dtype).reshape(shape)
+        return np.empty(shape, dtype=self.stream.dtype)
 
     def flush(self) -> None:
         """Send the rows waiting in the batch, if any."""
@@ -405,6 +415,8 @@ class Outlet(_LinkEnd):
                                     dropped=gap)
         droppable = self.when_full is WhenFull.DROP
         frames, in_ring = self._frames(header, data, droppable=droppable) if self.attached else (None, False)
+        if frames is None and self.ring is not None:
+            self.ring.cancel()               # a batch filled in the ring, dropped: nobody hears of its bytes
         if frames is None or not self._send(frames, droppable=droppable, seq=self.seq, rows=count):
             self.dropped_rows += count
             self.dropped_messages += 1
@@ -427,6 +439,8 @@ class Outlet(_LinkEnd):
         ring = self.ring
         if ring is None:
             return [header, data], False
+        if ring.reserved is not None:        # the batch, filled where it lies in the ring
+            return [header, b"", ring.commit(data)], True
         nbytes = data.nbytes
         if not ring.has_room(nbytes) and ring.should_wait(nbytes):
             if droppable or not self._wait_for_ring(ring, nbytes):

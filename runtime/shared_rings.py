@@ -148,6 +148,8 @@ class RingWriter:
         self.capacity = self.ring.capacity
         self.position = self.ring.word(_WRITTEN_AT)
         self.fresh_consumer = False      # the receiver restarted: what the ring holds may be nobody's
+        self.reserved: np.ndarray | None = None     # bytes held for a batch being filled (see reserve)
+        self._reserved_start = 0
         self.ring_messages = 0
         self.inline_messages = 0
 
@@ -181,8 +183,35 @@ class RingWriter:
         return (nbytes <= self.capacity and not self.fresh_consumer
                 and self.ring.word(_RECEIVED_AT) < self.position)
 
+    def reserve(self, nbytes: int) -> np.ndarray | None:
+        """``nbytes`` of the ring held for the sender to fill in place (a batch of rows), or None without
+        room; nothing else is placed until :meth:`commit` or :meth:`cancel`."""
+        if self.reserved is not None or not self.has_room(nbytes):
+            return None
+        start = self._start_for(nbytes)
+        self.reserved = self.ring.data[start % self.capacity:start % self.capacity + nbytes]
+        self._reserved_start = start
+        return self.reserved
+
+    def commit(self, data: np.ndarray) -> bytes:
+        """The reserved bytes are filled: ``data`` is their first part (the rest was not needed); return the
+        reference frame of a message carrying it."""
+        if self.reserved is None or not np.may_share_memory(data, self.reserved) or data.nbytes > len(self.reserved):
+            raise RuntimeError(f"link {self.ring.label}: a message was committed that is not the reserved batch")
+        self.reserved = None
+        self.position = self._reserved_start + data.nbytes
+        self.ring.set_word(_WRITTEN_AT, self.position)
+        self.ring_messages += 1
+        return _REFERENCE.pack(self._reserved_start, data.nbytes)
+
+    def cancel(self) -> None:
+        """Give the reservation up (its rows were dropped): nobody was told of those bytes."""
+        self.reserved = None
+
     def place(self, data: np.ndarray) -> bytes:
         """Copy ``data`` (contiguous) into the ring, which must have room; return its reference frame."""
+        if self.reserved is not None:
+            raise RuntimeError(f"link {self.ring.label}: rows placed while a batch is reserved")
         raw = data.reshape(-1).view(np.uint8)
         start = self._start_for(len(raw))
         offset = start % self.capacity
@@ -198,6 +227,7 @@ class RingWriter:
         return _REFERENCE.pack(self.position, 0)
 
     def close(self) -> None:
+        self.reserved = None
         self.ring.data = self.ring.words = None      # type: ignore[assignment]
         try:
             self.ring.map.close()

@@ -1,13 +1,16 @@
 """One link's two ends over a real ipc socket: delivery, gaps, end of stream, drops, and their counters."""
 
+import os
 import time
 
 import numpy as np
 import pytest
 import zmq
 from bandloom.blocks.block import Chunk, StreamInfo
+from bandloom.runtime import shared_rings
 from bandloom.runtime.flow.model import WhenFull
 from bandloom.runtime.links import Inlet, Outlet
+from bandloom.runtime.shared_rings import make_ring
 from bandloom.runtime.worker_spec import LinkSpec
 
 STREAM = StreamInfo("samples", "cf32", 48000.0, 156e6)
@@ -19,14 +22,24 @@ def ends(tmp_path):
     context = zmq.Context()
     made = []
 
-    def make(*, queue=8, when_full=WhenFull.WAIT, columns=None, stream=STREAM, batch_seconds=0.0):
+    rings = []
+
+    def make(*, queue=8, when_full=WhenFull.WAIT, columns=None, stream=STREAM, batch_seconds=0.0, ring=0,
+             should_abort=lambda: False):
+        """``ring``: bytes of a shared-memory ring for the link (made here as the launcher makes it)."""
         endpoint = f"ipc://{tmp_path}/link-{len(made)}"
-        receiving = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=stream if columns is None
-                             else stream.select(list(columns)), bind=True, queue=queue)
-        sending = LinkSpec(link=7, label="a.out -> b.in", endpoint=endpoint, stream=receiving.stream,
-                           columns=columns, queue=queue, when_full=when_full, batch_seconds=batch_seconds)
+        link = 7
+        if ring:
+            link = 3_000_000 + len(made)
+            assert make_ring(link, ring) is not None
+            rings.append(link)
+        receiving = LinkSpec(link=link, label="a.out -> b.in", endpoint=endpoint, stream=stream if columns is None
+                             else stream.select(list(columns)), bind=True, queue=queue, shared_bytes=ring)
+        sending = LinkSpec(link=link, label="a.out -> b.in", endpoint=endpoint, stream=receiving.stream,
+                           columns=columns, queue=queue, when_full=when_full, batch_seconds=batch_seconds,
+                           consumer="b", shared_bytes=ring)
         inlet = Inlet(context, receiving, "in")
-        outlet = Outlet(context, sending, lambda: False)
+        outlet = Outlet(context, sending, should_abort)
         made.extend([outlet, inlet])
         return outlet, inlet
 
@@ -34,6 +47,8 @@ def ends(tmp_path):
     for end in made:
         end.close()
     context.term()
+    for link in rings:
+        os.close(shared_rings._INHERITED.pop(link))
 
 
 def test_samples_arrive_with_their_absolute_index(ends, rng):
@@ -258,3 +273,50 @@ def test_a_tiled_transpose_equals_numpys(frames, width, dtype):
     data = rng.standard_normal((frames, 2 * width)).astype(np.float32).view(dtype)[:, :width]
     ours = transposed(data)
     assert ours.flags["C_CONTIGUOUS"] and ours.dtype == data.dtype and np.array_equal(ours, data.T)
+
+
+def test_a_narrow_link_through_shared_memory_fills_its_batch_in_place(ends, rng):
+    """Small chunks on a link with a ring and a latency: the batch is filled where it lies in the ring, so
+    each row is copied once (into the batch) and sent with no copy more; the consumer gets every row."""
+    outlet, inlet = ends(batch_seconds=10.0, ring=1 << 20)
+    data = (rng.standard_normal(40_000) + 1j * rng.standard_normal(40_000)).astype(np.complex64)
+    for start in range(0, len(data), 1000):
+        outlet.send(Chunk(data[start:start + 1000], start))
+    outlet.end()
+    got = []
+    while (chunk := inlet.receive()) is not None:
+        got.append(chunk.data.copy())
+    stats = outlet.stats()
+    assert np.array_equal(np.concatenate(got), data)
+    assert stats.shared_messages == stats.messages > 1 and stats.copied_bytes == data.nbytes
+    assert inlet.ring is not None and inlet.ring.ring_messages == stats.messages
+
+
+def test_a_dropping_link_drops_what_its_full_ring_cannot_take_and_says_so(ends):
+    """Ring of 1 MiB, messages of 256 KiB, nobody reading: four fit, the fifth is dropped and counted, and the
+    next message the consumer gets declares the gap."""
+    outlet, inlet = ends(when_full=WhenFull.DROP, queue=64, ring=1 << 20)
+    rows = (256 << 10) // 8
+    for n in range(5):
+        outlet.send(Chunk(np.full(rows, n, np.complex64), n * rows))
+    assert outlet.stats().dropped_messages == 1 and outlet.stats().dropped_rows == rows
+    taken = [inlet.receive() for _ in range(4)]
+    assert [int(c.data[0].real) for c in taken] == [0, 1, 2, 3]
+    del taken
+    outlet.send(Chunk(np.full(rows, 5, np.complex64), 5 * rows))
+    after = inlet.receive()
+    assert after.discontinuity and after.dropped == rows and int(after.data[0].real) == 5
+
+
+def test_a_consumer_that_keeps_every_message_gets_the_next_inline_not_a_stall(ends):
+    """The consumer has read all four messages the ring holds and keeps them: the sender does not wait for
+    room that cannot come; the fifth goes through the socket, and the kept rows are untouched."""
+    waited = []
+    outlet, inlet = ends(queue=64, ring=1 << 20, should_abort=lambda: waited.append(1) or len(waited) > 2000)
+    rows = (256 << 10) // 8
+    kept = []
+    for n in range(5):
+        outlet.send(Chunk(np.full(rows, n, np.complex64), n * rows))
+        kept.append(inlet.receive())
+    assert outlet.stats().shared_messages == 4 and outlet.stats().messages == 5
+    assert [int(c.data[-1].real) for c in kept] == [0, 1, 2, 3, 4]

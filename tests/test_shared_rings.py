@@ -153,6 +153,26 @@ print(first, make_ring(7, 1 << 20), inherited_ring(7))
     assert done.returncode == 0 and done.stdout.split() == ["None"] * 3, done.stderr
 
 
+def test_a_batch_is_filled_where_it_lies_and_only_its_filled_part_is_sent(ring):
+    """reserve / commit: the writer fills rows in place; nothing else may be placed meanwhile, and only the
+    reserved bytes may be committed; a cancelled reservation leaves the ring as it was."""
+    writer, reader = RingWriter(ring, "t"), RingReader(ring, "t")
+    room = writer.reserve(4096)
+    batch = room.view(ROW)
+    batch[:100] = message(100, 5)
+    with pytest.raises(RuntimeError, match="reserved"):
+        writer.place(message(1, 0))
+    with pytest.raises(RuntimeError, match="not the reserved batch"):
+        writer.commit(message(100, 5))
+    got = reader.take(writer.commit(batch[:100]), ROW, 800)
+    assert np.array_equal(got, message(100, 5)) and writer.position == 800
+    before = writer.position
+    assert writer.reserve(4096) is not None
+    writer.cancel()
+    assert writer.position == before and writer.reserved is None
+    assert writer.reserve(2 * CAPACITY) is None
+
+
 def test_reference_frames_are_small():
     assert REFERENCE_BYTES == 16
 
