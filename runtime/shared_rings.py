@@ -1,8 +1,9 @@
 """Shared-memory rings: a link's samples passed between two local block processes without the kernel.
 
-Over an ipc socket every sample byte is copied four times and costs both
-processes about 1 ns of CPU per byte (the sender's ZeroMQ thread writes it
-into the socket, the receiver's reads it out; measured in docs/performance.md).
+Over an ipc socket every sample byte is copied twice by the kernel, and
+the two processes spend 0.85-1.2 ns of CPU per byte between them (the
+sender's ZeroMQ thread writes it into the socket, the receiver's reads it
+out; docs/performance.md).
 A link whose two ends are worker processes forked by the same launcher (see
 :mod:`.launcher`) can instead pass its samples through a ring of shared memory
 that both map: the sender copies a message's rows into the ring once and
@@ -65,8 +66,8 @@ __all__ = ["HEADER_BYTES", "MAX_RING_BYTES", "MIN_RING_BYTES", "REFERENCE_BYTES"
 
 HEADER_BYTES = 4096
 MIN_RING_BYTES = 1 << 20
-MAX_RING_BYTES = 32 << 20
-TOTAL_RING_BYTES = 256 << 20             # the rings of one machine's run, in all (pages are used as written)
+MAX_RING_BYTES = 8 << 20
+TOTAL_RING_BYTES = 64 << 20             # the rings of one machine's run, in all (pages are used as written)
 REFERENCE_BYTES = 16
 _MAGIC = int.from_bytes(b"bandring", "little")
 _MAGIC_AT, _CAPACITY_AT, _WRITTEN_AT, _RECEIVED_AT, _RELEASED_AT = (8 * n for n in range(5))   # uint64 word indices
@@ -84,7 +85,7 @@ def ring_bytes(links: int) -> int:
     """The data capacity of each ring when ``links`` links of one machine's run have one: an equal share of
     :data:`TOTAL_RING_BYTES`, within :data:`MIN_RING_BYTES` .. :data:`MAX_RING_BYTES`, in whole pages.
 
-    >>> ring_bytes(2) == MAX_RING_BYTES, ring_bytes(64) == 4 << 20, ring_bytes(1000) == MIN_RING_BYTES
+    >>> ring_bytes(2) == MAX_RING_BYTES, ring_bytes(16) == 4 << 20, ring_bytes(1000) == MIN_RING_BYTES
     (True, True, True)
     """
     wanted = min(MAX_RING_BYTES, max(MIN_RING_BYTES, TOTAL_RING_BYTES // max(1, links)))
