@@ -78,8 +78,11 @@ class SampleFormat:
         return base.newbyteorder("<" if byte_order == "little" else ">") if base.itemsize > 1 else base
 
     def decode(self, raw: bytes | memoryview | np.ndarray, byte_order: ByteOrder = "little") -> np.ndarray:
-        """Bytes (a whole number of samples) to complex64 or float32 samples, full scale 1.0."""
-        values = np.frombuffer(raw, dtype=self.component_dtype(byte_order)).astype(np.float32)
+        """Bytes (a whole number of samples) to complex64 or float32 samples, full scale 1.0. Native float32
+        components with no offset or scale are viewed, not copied (read-only when ``raw`` is bytes)."""
+        values = np.frombuffer(raw, dtype=self.component_dtype(byte_order))
+        plain = values.dtype == np.float32 and not self.offset and self.scale == 1.0
+        values = values if plain else values.astype(np.float32)
         if self.offset:
             values += np.float32(self.offset)
         if self.scale != 1.0:
