@@ -320,3 +320,60 @@ def test_a_consumer_that_keeps_every_message_gets_the_next_inline_not_a_stall(en
         kept.append(inlet.receive())
     assert outlet.stats().shared_messages == 4 and outlet.stats().messages == 5
     assert [int(c.data[-1].real) for c in kept] == [0, 1, 2, 3, 4]
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_shared_column_batches_send_exactly_what_the_links_send_one_by_one(ends, seed):
+    """Ten single-channel links and one of all channels, fed random chunks with jumps in the stream and
+    batches falling due at random: through ColumnBatches (the way a worker sends) every link gets the same
+    messages -- first index, rows, values, discontinuity, declared gap -- as a twin fed link by link."""
+    from bandloom.runtime.links import ColumnBatches, deliver
+    width = 10
+    wide = StreamInfo("channels", "cf32", 1e4, 0.0, channels=tuple(range(width)),
+                      channel_frequencies=tuple(float(c) for c in range(width)))
+    rng = np.random.default_rng(seed)
+    twins = []
+    for _ in range(2):
+        pairs = [ends(columns=(c,), stream=wide, batch_seconds=10.0) for c in range(width)]
+        pairs.append(ends(columns=None, stream=wide, batch_seconds=10.0))
+        twins.append(pairs)
+    grouped = [o for o, _ in twins[0]]
+    group = ColumnBatches.of(grouped)
+    assert group is not None and len(group.members) == width and group.others == [grouped[-1]]
+    batch = grouped[0].batch_rows
+    received = [[[] for _ in range(width + 1)] for _ in twins]
+
+    def take(inlet, messages):
+        chunk = inlet.receive()
+        if chunk is not None:
+            messages.append((chunk.first_index, chunk.count, chunk.discontinuity, chunk.dropped,
+                             chunk.data.tobytes()))
+    index = 0
+    for step in range(60):
+        count = int(rng.choice([1, 17, 500, batch // 3, batch - 1, batch + 5]))
+        jump = int(rng.choice([0, 0, 0, 0, 7]))
+        index += jump
+        frames = (rng.standard_normal((count, width)) + 1j * rng.standard_normal((count, width))).astype(np.complex64)
+        chunk = Chunk(frames, index, discontinuity=bool(jump), dropped=jump)
+        deliver(chunk, grouped, group)
+        for outlet, picked in zip([o for o, _ in twins[1]], [None] * (width + 1)):
+            outlet.send(chunk, picked=picked)
+        index += count
+        if rng.random() < 0.1:                     # batches fall due: the worker asks every link at one time
+            now = time.monotonic() + 100.0
+            for outlet, _ in twins[0] + twins[1]:
+                outlet.flush_if_due(now)
+        for pairs, seen in zip(twins, received):   # the consumers keep up
+            for (_, inlet), messages in zip(pairs, seen):
+                while inlet.sock.poll(0):
+                    take(inlet, messages)
+    for pairs, seen in zip(twins, received):
+        for (outlet, inlet), messages in zip(pairs, seen):
+            outlet.end()
+            while not inlet.ended:
+                take(inlet, messages)
+    for ours, theirs in zip(*received):
+        assert ours == theirs and len(ours) > 3
+    assert 10 < group.chunks_held < 60          # both ways were taken
+    used = sum(o.stats().rows for o in grouped[:width])
+    assert used == sum(o.stats().rows for o, _ in twins[1][:width]) > 0
