@@ -66,10 +66,9 @@ from .keys import load_server_keys
 from .shared_rings import RingReader, RingWriter, inherited_ring
 from .worker_spec import LinkSpec
 
-__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "ColumnBatches", "Inlet", "LinkError",
-           "MESSAGE_BYTES",
+__all__ = ["Aborted", "BATCH_BYTES", "BATCH_POLL_MS", "COLUMN_MAJOR_LINKS", "Inlet", "LinkError", "MESSAGE_BYTES",
            "Outlet", "POLL_MS", "QUEUE_BYTES", "TRANSPOSE_TILE_BYTES", "column_major", "configure", "recv_monitor_event",
-           "deliver", "secure_server", "transpose_into", "transposed"]
+           "secure_server", "transposed"]
 
 MESSAGE_BYTES = 8 << 20                       # samples in one message, bytes at most
 QUEUE_BYTES = 256 << 20                       # samples a link's queue holds at each end, bytes at most
@@ -213,111 +212,12 @@ def transposed(data: np.ndarray) -> np.ndarray:
     >>> bool(np.array_equal(transposed(data), data.T)), transposed(data).flags["C_CONTIGUOUS"]
     (True, True)
     """
-    out = np.empty(data.shape[::-1], data.dtype)
-    transpose_into(out, data)
-    return out
-
-
-def transpose_into(out: np.ndarray, data: np.ndarray) -> None:
-    """``out[...] = data.T`` (2-D), a tile of rows of ``data`` at a time (see :func:`transposed`)."""
     frames, width = data.shape
+    out = np.empty((width, frames), data.dtype)
     step = max(8, TRANSPOSE_TILE_BYTES // max(1, width * data.itemsize))
     for start in range(0, frames, step):
         out[:, start:start + step] = data[start:start + step].T
-
-
-def deliver(chunk: Chunk, outlets: list[Outlet], group: ColumnBatches | None = None) -> None:
-    """Send ``chunk`` on every link of one output: to its single-channel links through ``group`` (their
-    shared batches, see :class:`ColumnBatches`) when it can take the chunk, else one by one."""
-    if group is not None and group.hold(chunk):
-        for outlet in group.others:
-            outlet.send(chunk)
-        return
-    for outlet, picked in zip(outlets, column_major(chunk, outlets)):
-        outlet.send(chunk, picked=picked)
-
-
-class ColumnBatches:
-    """The batches of many single-channel links of one output, kept as the rows of one matrix.
-
-    A 64-channel split calls each of its 64 outlets once a chunk, most often only to copy a few kilobytes
-    into that link's waiting batch, which cost more than the bank's own work on the chunk. Instead, while
-    every member's batch is a row of this matrix and holds the same rows, a chunk that continues them is
-    transposed straight into the matrix (one copy for every link, no call per link) and only the counters
-    are kept per link; a full batch is sent link by link as before. Anything else (a jump in the stream,
-    members out of step, a chunk larger than a batch) goes link by link through :meth:`Outlet.send`, which
-    is what this does, faster.
-    """
-
-    def __init__(self, members: list[Outlet], others: list[Outlet]) -> None:
-        self.members = members
-        self.others = others                         # the output's other links, sent to as usual
-        columns = tuple(o.columns for o in members if isinstance(o.columns, int))
-        picker = _column_picker(columns)
-        self.columns: slice | list[int] = picker if isinstance(picker, (slice, list)) else list(columns)
-        self.rows = members[0].batch_rows
-        self.matrix: np.ndarray | None = None        # the members' batches, one row each
-        self.chunks_held = 0                          # chunks taken here (the rest went link by link)
-        self.views: list[np.ndarray] = []
-
-    @classmethod
-    def of(cls, outlets: list[Outlet]) -> ColumnBatches | None:
-        """A group of the plain single-channel links among ``outlets`` that batch alike, if there are enough."""
-        members = [o for o in outlets if type(o) is Outlet and isinstance(o.columns, int) and o.batch_seconds > 0]
-        alike = {(o.batch_rows, o.batch_seconds, o.stream.dtype) for o in members}
-        if len(members) < COLUMN_MAJOR_LINKS or len(alike) != 1:
-            return None
-        return cls(members, [o for o in outlets if all(o is not m for m in members)])
-
-    def _in_step(self, held: int) -> bool:
-        if held == 0:
-            return all(o._held == 0 for o in self.members)
-        return len(self.views) == len(self.members) and all(
-            o._held == held and o._batch is view for o, view in zip(self.members, self.views))
-
-    def hold(self, chunk: Chunk) -> bool:
-        """Hold the chunk's rows for every member; False (nothing done) when the members must be sent the
-        chunk one by one instead."""
-        data = chunk.data
-        count = len(data)
-        first = self.members[0]
-        held = first._held
-        if data.ndim != 2 or not count or count >= self.rows or not self._in_step(held):
-            return False
-        if held and (chunk.discontinuity or chunk.first_index != first._held_end):
-            for outlet in self.members:         # a jump in the stream starts a message of its own
-                outlet.flush()
-            held = 0
-        picked = data[:, self.columns]
-        head = min(count, self.rows - held)
-        self._put(picked[:head], chunk.first_index, held, chunk.discontinuity)
-        if held + head == self.rows:
-            for outlet in self.members:
-                outlet.flush()
-            if head < count:
-                self._put(picked[head:], chunk.first_index + head, 0, False)
-        elif time.monotonic() - first._held_since >= first.batch_seconds:
-            for outlet in self.members:
-                outlet.flush()
-        self.chunks_held += 1
-        return True
-
-    def _put(self, rows: np.ndarray, first_index: int, held: int, discontinuity: bool) -> None:
-        count = len(rows)
-        if held == 0:
-            self.matrix = matrix = np.empty((len(self.members), self.rows), rows.dtype)
-            self.views = list(matrix)
-            since = time.monotonic()
-            for outlet, view in zip(self.members, self.views):
-                outlet._batch = view
-                outlet._held_first, outlet._held_discontinuity, outlet._held_since = first_index, discontinuity, since
-        assert self.matrix is not None
-        transpose_into(self.matrix[:, held:held + count], rows)
-        nbytes = count * rows.itemsize
-        for outlet in self.members:
-            outlet._held = held + count
-            outlet._held_end = first_index + count
-            outlet.copied_bytes += nbytes
+    return out
 
 
 def _column_picker(columns: tuple[int, ...] | None) -> int | slice | list[int] | None:
@@ -495,10 +395,9 @@ class Outlet(_LinkEnd):
         """Rows wait in the batch."""
         return bool(self._held)
 
-    def flush_if_due(self, now: float | None = None) -> None:
-        """Send the batch if its oldest row has waited ``batch_seconds`` by ``now`` (default: now; the worker
-        asks while idle, with one time for all its links, so that batches begun together go together)."""
-        if self._held and (time.monotonic() if now is None else now) - self._held_since >= self.batch_seconds:
+    def flush_if_due(self) -> None:
+        """Send the batch if its oldest row has waited ``batch_seconds`` (the worker asks while idle)."""
+        if self._held and time.monotonic() - self._held_since >= self.batch_seconds:
             self.flush()
 
     def _send_rows(self, data: np.ndarray, first_index: int, discontinuity: bool) -> None:

@@ -47,7 +47,7 @@ from ._memory import reuse_chunk_buffers
 from .control import Control, ControlWord, StatsMessage, WorkerEvent
 from .endpoint_client import EndpointInlet
 from .endpoints import EndpointOutlet
-from .links import BATCH_POLL_MS, POLL_MS, Aborted, ColumnBatches, Inlet, Outlet, deliver
+from .links import BATCH_POLL_MS, POLL_MS, Aborted, Inlet, Outlet, column_major
 from .plugins import load_registry
 from .worker_spec import WorkerSpec, specs_from_json
 
@@ -69,7 +69,6 @@ class Worker:
         self.released = False
         self.inlets: list[Inlet] = []
         self.outlets: dict[str, list[Outlet]] = {}
-        self.column_batches: dict[str, ColumnBatches] = {}      # port -> its single-channel links' batches
         self.block: Block | None = None
         self.last_stats = 0.0
         self.rows_in = 0
@@ -109,9 +108,8 @@ class Worker:
     def flush_due_batches(self) -> bool:
         """Send batches whose oldest rows have waited long enough; True while any outlet still holds rows."""
         holding = False
-        now = time.monotonic()              # one time for all: batches begun together go together
         for outlet in self.all_outlets():
-            outlet.flush_if_due(now)
+            outlet.flush_if_due()
             holding = holding or outlet.holding
         return holding
 
@@ -163,9 +161,6 @@ class Worker:
         for port, links in spec.outputs.items():
             self.outlets[port] = [(EndpointOutlet if link.bind else Outlet)(self.context, link, self.while_waiting)
                                   for link in links]
-            group = ColumnBatches.of(self.outlets[port])
-            if group is not None:
-                self.column_batches[port] = group
         block.start(inputs)
         for inlet in self.inlets:
             inlet.take_over(block.kept_from_predecessor(inlet.port))
@@ -177,7 +172,9 @@ class Worker:
         for port, chunks in (produced or {}).items():
             for chunk in chunks_of(chunks):
                 self.rows_out += chunk.count
-                deliver(chunk, self.outlets.get(port, []), self.column_batches.get(port))
+                outlets = self.outlets.get(port, [])
+                for outlet, picked in zip(outlets, column_major(chunk, outlets)):
+                    outlet.send(chunk, picked=picked)
 
     def wait_for_go(self) -> None:
         """The start barrier: a source produces nothing until every process of the flow has opened its
