@@ -35,12 +35,14 @@ bytes. A message's bytes are released when the last numpy array viewing them
 is freed (a finalizer on the array the receiver made; views of it keep it
 alive), so a block may keep rows as long as it likes: the sender never
 writes over them. Releases may come out of order; ``released`` advances
-over the oldest message still held only. These word-sized stores and loads
-are ordered on x86-64; elsewhere the system calls each side makes between
-them (socket send and receive) order them.
+over the oldest message still held only. That the receiver's last read of
+a message's bytes comes before its store of ``released`` is guaranteed by
+x86-64's memory order (stores are not made visible ahead of earlier loads);
+weakly ordered processors (ARM) give no such guarantee without a fence that
+Python cannot issue, so rings are used on x86-64 only (:data:`SUPPORTED`).
 
 When the ring has no room the sender waits, as it would for a full socket
-(see :meth:`RingWriter.room_or_wait`), except when the receiver has taken every
+(:meth:`RingWriter.has_room`, :meth:`RingWriter.should_wait`), except when the receiver has taken every
 message in the ring and still holds them (a block that keeps its input): the
 message then goes inline, through the socket as on any other link. Every
 message on such a link, inline or not, carries the sender's ``written``
@@ -52,6 +54,7 @@ from __future__ import annotations
 
 import mmap
 import os
+import platform
 import struct
 import threading
 import weakref
@@ -61,10 +64,11 @@ import numpy as np
 
 from .wire import WireError
 
-__all__ = ["HEADER_BYTES", "MAX_RING_BYTES", "MIN_RING_BYTES", "REFERENCE_BYTES", "RingError", "RingReader",
+__all__ = ["HEADER_BYTES", "MAX_RING_BYTES", "MIN_RING_BYTES", "REFERENCE_BYTES", "RingError", "RingReader", "SUPPORTED",
            "RingWriter", "TOTAL_RING_BYTES", "inherited_ring", "make_ring", "ring_bytes"]
 
 HEADER_BYTES = 4096
+SUPPORTED = platform.machine().lower() in ("x86_64", "amd64")     # see the module doc: memory order
 MIN_RING_BYTES = 1 << 20
 MAX_RING_BYTES = 8 << 20
 TOTAL_RING_BYTES = 64 << 20             # the rings of one machine's run, in all (pages are used as written)

@@ -41,6 +41,7 @@ from .control import TERMINAL_STATES, BlockState, Control, ControlWord, ProcessE
 from .flow import FailurePolicy, Flow, Instance, Link, OnFailure, process_groups
 from .launcher import LaunchedProcess, Launcher
 from .run_report import StatusDisplay, describe_exit, summarise
+from .shared_rings import SUPPORTED as SHARED_MEMORY_SUPPORTED
 from .shared_rings import ring_bytes
 from .shares import HEARTBEAT_SECONDS, SILENCE_SECONDS, BlockView, RemoteProcess, ShareNetwork, ShareState, ShareStatus
 from .worker_spec import LinkSpec, WorkerSpec, specs_to_json
@@ -163,9 +164,10 @@ def link_specs(folder: str, inst: Instance, *, flow: Flow | None = None, earlier
 def shared_ring_sizes(flow: Flow, local: Mapping[str, Instance]) -> dict[int, int]:
     """The links of this machine's blocks that pass their samples through shared memory, each with its
     ring's size: every link between two of ``local`` (forked by one launcher) over the run's private
-    folder, unless the flow says ``shared_memory = false``. The rings together hold at most
+    folder, unless the flow says ``shared_memory = false`` or this processor is not one rings are safe on
+    (:data:`.shared_rings.SUPPORTED`). The rings together hold at most
     :data:`.shared_rings.TOTAL_RING_BYTES`."""
-    if not flow.shared_memory:
+    if not (flow.shared_memory and SHARED_MEMORY_SUPPORTED):
         return {}
     chosen = [link for link in flow.links
               if link.target is not None and link.endpoint is None and link.source in local and link.target in local]

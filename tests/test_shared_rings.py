@@ -218,6 +218,7 @@ to = "wide.samples"
 """
 
 
+@pytest.mark.skipif(not shared_rings.SUPPORTED, reason="rings are used on x86-64 only (memory order)")
 def test_a_flow_through_shared_memory_writes_what_it_writes_through_sockets(tmp_path):
     """Eight per-channel writers, and the band put back together from all eight channels (a wide link):
     every file is byte for byte the same with shared memory and without, nothing is lost, and the report
