@@ -13,6 +13,8 @@ Per link (label ``link``, the link's label as the summary prints it):
 ``bandloom_link_sent_samples_total``, ``bandloom_link_received_samples_total``
 (for an endpoint: acknowledged by its consumers), ``bandloom_link_dropped_samples_total``,
 ``bandloom_link_missing_samples_total`` (gaps that arrived on the link),
+``bandloom_link_sent_messages_total``, ``bandloom_link_shared_memory_messages_total`` (of those,
+the messages whose samples went through shared memory, see :mod:`.shared_rings`),
 ``bandloom_link_in_flight_samples``, ``bandloom_link_held_samples`` (waiting in the
 sender to fill a message, see the link's ``latency``) and ``bandloom_link_queue_fill_ratio``.
 Per block (label ``block``): ``bandloom_block_state`` (one series per state,
@@ -80,7 +82,10 @@ class FlowCollector(Collector):
                 for name, doc in (("sent_samples", "Samples sent on the link"),
                                   ("received_samples", "Samples received from the link (endpoints: acknowledged)"),
                                   ("dropped_samples", "Samples the link dropped while full"),
-                                  ("missing_samples", "Samples missing in gaps on the link"))}
+                                  ("missing_samples", "Samples missing in gaps on the link"),
+                                  ("sent_messages", "Messages sent on the link"),
+                                  ("shared_memory_messages", "Of the messages sent, those whose samples went "
+                                                             "through shared memory"))}
         in_flight = GaugeMetricFamily("bandloom_link_in_flight_samples", "Samples sent and not yet received",
                                       labels=["link"])
         held = GaugeMetricFamily("bandloom_link_held_samples", "Samples waiting in the sender to fill a message",
@@ -92,6 +97,8 @@ class FlowCollector(Collector):
             link["sent_samples"].add_metric(label, sent.rows)
             link["dropped_samples"].add_metric(label, sent.dropped_rows)
             link["missing_samples"].add_metric(label, sent.missing_rows)
+            link["sent_messages"].add_metric(label, sent.messages)
+            link["shared_memory_messages"].add_metric(label, sent.shared_messages)
             held.add_metric(label, sent.held_rows)
             far, between = received_and_in_flight(sent, received)
             if far is not None and between is not None:

@@ -7,6 +7,7 @@ import sys
 import time
 import urllib.request
 
+from bandloom.runtime import shared_rings
 from prometheus_client.parser import text_string_to_metric_families
 from runner import bandloom
 
@@ -60,6 +61,9 @@ def test_metrics_are_scraped_during_a_run(tmp_path):
         assert values["bandloom_link_in_flight_samples", link] == max(0, sent - received)
         assert 0 <= values["bandloom_link_queue_fill_ratio", link] <= 1
         assert values["bandloom_link_dropped_samples_total", link] == 0
+        messages = values["bandloom_link_sent_messages_total", link]
+        shared = values["bandloom_link_shared_memory_messages_total", link]
+        assert messages > 0 and shared == (messages if shared_rings.SUPPORTED else 0)
         assert values["bandloom_block_state", (("bandloom_block_state", "running"), ("block", "sink"))] == 1
         assert values["bandloom_block_restarts_total", (("block", "sink"),)] == 0
     try:
