@@ -155,8 +155,6 @@ class RingWriter:
         self.fresh_consumer = False      # the receiver restarted: what the ring holds may be nobody's
         self.reserved: np.ndarray | None = None     # bytes held for a batch being filled (see reserve)
         self._reserved_start = 0
-        self.ring_messages = 0
-        self.inline_messages = 0
 
     def consumer_restarted(self) -> None:
         """The receiving end is a new instance: messages its predecessor was sent may never be read, so a
@@ -206,7 +204,6 @@ class RingWriter:
         self.reserved = None
         self.position = self._reserved_start + data.nbytes
         self.ring.set_word(_WRITTEN_AT, self.position)
-        self.ring_messages += 1
         return _REFERENCE.pack(self._reserved_start, data.nbytes)
 
     def cancel(self) -> None:
@@ -223,12 +220,10 @@ class RingWriter:
         self.ring.data[offset:offset + len(raw)] = raw
         self.position = start + len(raw)
         self.ring.set_word(_WRITTEN_AT, self.position)
-        self.ring_messages += 1
         return _REFERENCE.pack(start, len(raw))
 
     def inline_reference(self) -> bytes:
         """The reference frame of a message that goes through the socket: the sender's position only."""
-        self.inline_messages += 1
         return _REFERENCE.pack(self.position, 0)
 
     def close(self) -> None:

@@ -37,6 +37,8 @@ _REQUIRED = {
     "version": int, "stream": str, "seq": int, "first_index": int, "count": int, "width": int,
     "sample_type": str, "sample_rate": float, "centre_frequency": float, "flags": int,
 }
+_PER_MESSAGE = ("seq", "first_index", "count", "flags", "dropped")      # what changes from message to message
+_CHANGING = frozenset(_PER_MESSAGE + ("reason",))
 _OPTIONAL = {"dropped": int, "channels": list, "channel_frequencies": list, "reason": str}
 
 
@@ -77,7 +79,7 @@ class HeaderTemplate:
             constant["channel_frequencies"] = [float(f) for f in channel_frequencies or ()]
         self._packer = msgpack.Packer(use_bin_type=True)
         self._constant = b"".join(self._packer.pack(key) + self._packer.pack(value) for key, value in constant.items())
-        self._entries = len(constant) + 5          # seq, first_index, count, flags, dropped
+        self._entries = len(constant) + len(_PER_MESSAGE)
 
     def encode(self, *, seq: int, first_index: int, count: int, flags: int = 0, dropped: int = 0,
                reason: str | None = None) -> bytes:
@@ -96,7 +98,6 @@ def _no_extensions(code: int, data: bytes) -> None:
 
 _LIMITS: dict[str, Any] = dict(raw=False, strict_map_key=True, ext_hook=_no_extensions, max_str_len=HEADER_LIMIT,
                                max_bin_len=0, max_array_len=1 << 16, max_map_len=64)
-_CHANGING = frozenset(("seq", "first_index", "count", "flags", "dropped", "reason"))
 
 
 def decode_header(raw: bytes | memoryview) -> dict[str, Any]:

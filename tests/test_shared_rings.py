@@ -13,7 +13,7 @@ import sys
 import numpy as np
 import pytest
 from bandloom.runtime import shared_rings
-from bandloom.runtime.shared_rings import REFERENCE_BYTES, RingError, RingReader, RingWriter, make_ring
+from bandloom.runtime.shared_rings import RingError, RingReader, RingWriter, make_ring
 from runner import bandloom, run_flow
 
 CAPACITY = 1 << 20
@@ -173,8 +173,6 @@ def test_a_batch_is_filled_where_it_lies_and_only_its_filled_part_is_sent(ring):
     assert writer.reserve(2 * CAPACITY) is None
 
 
-def test_reference_frames_are_small():
-    assert REFERENCE_BYTES == 16
 
 
 FLOW = """
