@@ -12,7 +12,8 @@ import sys
 import time
 
 import pytest
-from runner import bandloom
+from bandloom.runtime import shared_rings
+from runner import bandloom, worker_processes
 
 SOURCE = '''[blocks.band]
 type = "scenario"
@@ -128,7 +129,8 @@ def test_another_local_user_cannot_read_the_secret_key():
 
 @needs_root
 def test_another_local_user_cannot_reach_a_running_flows_sockets(tmp_path):
-    """While a flow runs, 'nobody' can neither list its private folder nor connect to a link's socket."""
+    """While a flow runs, 'nobody' can neither list its private folder, nor connect to a link's socket, nor
+    open the link's shared memory through the workers' descriptors (/proc/PID/fd)."""
     flow = tmp_path / "long.toml"
     flow.write_text(SOURCE.format(duration="30 s") + '\n[blocks.sink]\ntype = "discard"\n'
                     '\n[[links]]\nfrom = "band.samples"\nto = "sink.samples"\n')
@@ -149,6 +151,15 @@ def test_another_local_user_cannot_reach_a_running_flows_sockets(tmp_path):
                  f"try:\n    s.connect({folder + '/0'!r}); sys.exit('connected')\nexcept PermissionError: pass\n")
         done = as_other_user(probe)
         assert done.returncode == 0, done.stderr
+        if shared_rings.SUPPORTED:               # the link's shared memory: reachable through no path of theirs
+            rings = [f"/proc/{pid}/fd/{fd}" for pid in worker_processes(below=run.pid)
+                     for fd in os.listdir(f"/proc/{pid}/fd")
+                     if os.readlink(f"/proc/{pid}/fd/{fd}").startswith("/memfd:bandloom-link-")]
+            assert rings
+            probe = "".join(f"try:\n    open({path!r}, 'rb'); raise SystemExit('opened {path}')\n"
+                            f"except PermissionError: pass\n" for path in rings)
+            done = as_other_user(probe)
+            assert done.returncode == 0, done.stderr
     finally:
         run.send_signal(signal.SIGINT)
         run.communicate(timeout=60)
