@@ -17,13 +17,13 @@ from numpy.lib.stride_tricks import sliding_window_view
 _MAX_BLOCK_ELEMENTS = 1 << 22
 
 
-def prepare_fold_taps(taps: np.ndarray) -> np.ndarray:
-    """Taps in the form ``fold_frames`` wants: reversed, float64."""
+def prepare_fold_taps(taps: np.ndarray, channels: int) -> np.ndarray:
+    """Taps in the form ``fold_frames`` wants: reversed, float64 (any ``channels``)."""
     return np.asarray(taps, dtype=np.float64)[::-1].copy()
 
 
-def prepare_spread_taps(taps: np.ndarray) -> np.ndarray:
-    """Taps in the form ``spread_frames`` wants: float64."""
+def prepare_spread_taps(taps: np.ndarray, channels: int) -> np.ndarray:
+    """Taps in the form ``spread_frames`` wants: float64 (any ``channels``)."""
     return np.asarray(taps, dtype=np.float64).copy()
 
 
@@ -31,7 +31,7 @@ def fold_frames(buffer: np.ndarray, prepared_taps: np.ndarray, channels: int, st
                 out: np.ndarray) -> None:
     """Weight and fold frames of ``buffer`` into ``out`` (overwritten).
 
-    ``prepared_taps`` comes from ``prepare_fold_taps(taps)``. For frame ``f``
+    ``prepared_taps`` comes from ``prepare_fold_taps(taps, channels)``. For frame ``f``
     the window is ``buffer[starts[f] : starts[f] + L]`` (L taps); its sample
     ``j`` is weighted by ``taps[L - 1 - j]`` and added to
     ``out[f, (offsets[f] + j) % channels]``. ``offsets[f]`` is the absolute
@@ -63,7 +63,7 @@ def spread_frames(frames: np.ndarray, prepared_taps: np.ndarray, decimation: int
                   out: np.ndarray, start: int = 0, stop: int | None = None) -> None:
     """Overlap-add periodic frames into ``out`` (added in place), only into ``out[start:stop]``.
 
-    ``prepared_taps`` comes from ``prepare_spread_taps(taps)``.
+    ``prepared_taps`` comes from ``prepare_spread_taps(taps, channels)``.
     ``frames`` has shape ``(F, channels)``; frame ``f`` is a period-M sequence
     and starts ``f * decimation`` samples into ``out``. Output sample
     ``f * decimation + j`` gains ``taps[j] * frames[f, (phase + f * decimation + j) % M]``

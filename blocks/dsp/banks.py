@@ -117,15 +117,18 @@ class _Shares:
         self.threads = threads
         self._pool: ThreadPoolExecutor | None = None
 
-    def run(self, count: int, work_per_item: int, task: Callable[[int, int], None]) -> None:
-        shares = min(_SHARES_PER_THREAD * self.threads, count, max(1, count * work_per_item // _MIN_SHARED_WORK))
+    def run(self, count: int, work_per_item: int, task: Callable[[int, int], None], *, align: int = 1) -> None:
+        """``task(a, b)`` for shares ``[a, b)`` covering ``range(count)``; every share but the last starts and
+        ends at a multiple of ``align`` (the fast fold sums frames in groups that must not be split)."""
+        shares = min(_SHARES_PER_THREAD * self.threads, count // align,
+                     max(1, count * work_per_item // _MIN_SHARED_WORK))
         if self.threads == 1 or shares <= 1:
             if count:
                 task(0, count)
             return
         if self._pool is None:
             self._pool = ThreadPoolExecutor(max_workers=self.threads - 1, thread_name_prefix="bank")
-        edges = [count * i // shares for i in range(shares + 1)]
+        edges = [count // align * i // shares * align for i in range(shares)] + [count]
         queue = iter(range(shares))
         lock = threading.Lock()
 
@@ -213,7 +216,7 @@ class AnalysisBank:
         self._shares = _Shares(_check_threads(threads))
         self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
-        self._prepared = self._kernel.prepare_fold_taps(self._taps)
+        self._prepared = self._kernel.prepare_fold_taps(self._taps, self._channels)
         self.reset()
 
     channels = property(lambda self: self._channels, doc="Number of channels M.")
@@ -257,17 +260,21 @@ class AnalysisBank:
         # read straight from x without copying the chunk.
         window_start = frame_numbers * D - (L - 1)
         boundary = int(np.searchsorted(window_start, before))
+        untransformed = out                          # the frames left for one FFT call at the end
         if boundary:
             joined = np.concatenate([self._history, x[:min(len(x), int(window_start[boundary - 1]) + L - before)]])
             self._fold(joined, window_start[:boundary] - (before - (L - 1)), window_start[:boundary], out[:boundary])
-            _fft_rows(out[:boundary])
         if boundary < len(frame_numbers):
             starts, absolute, rest = window_start[boundary:] - before, window_start[boundary:], out[boundary:]
-
-            def fold_and_transform(a: int, b: int) -> None:      # one thread's share of the frames
-                self._fold(x, starts[a:b], absolute[a:b], rest[a:b])
-                _fft_rows(rest[a:b])
-            self._shares.run(len(rest), L, fold_and_transform)
+            if self.threads == 1:
+                self._fold(x, starts, absolute, rest)
+            else:
+                def fold_and_transform(a: int, b: int) -> None:      # one thread's share of the frames
+                    self._fold(x, starts[a:b], absolute[a:b], rest[a:b])
+                    _fft_rows(rest[a:b])
+                self._shares.run(len(rest), L, fold_and_transform, align=4 * (M // D))
+                untransformed = out[:boundary]
+        _fft_rows(untransformed)                     # one call, not two: a scipy.fft call costs about 10 us
         if L > 1:
             keep = min(len(x), L - 1)
             self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
@@ -343,7 +350,7 @@ class SynthesisBank:
         self._shares = _Shares(_check_threads(threads))
         self._kernel = _load_kernel(kernel)
         self._work_dtype = _KERNEL_DTYPES[kernel]
-        self._prepared = self._kernel.prepare_spread_taps(self._taps)
+        self._prepared = self._kernel.prepare_spread_taps(self._taps, self._channels)
         self.reset()
 
     channels = property(lambda self: self._channels, doc="Number of channels M.")
