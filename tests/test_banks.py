@@ -222,3 +222,31 @@ def test_fast_fold_equals_reference_fold(geometry, count, irregular, seed):
     got = np.full((count, channels), np.nan, np.complex64)
     fast.fold_frames(buffer, fast.prepare_fold_taps(taps, channels), channels, starts, offsets, got)
     assert relative_error(got, want) <= 1e-5
+
+
+@settings(max_examples=60, deadline=None)
+@given(geometry=st.sampled_from(GEOMETRIES + [(1024, 512, 8192), (64, 64, 517)]), count=st.integers(1, 40),
+       phase=st.integers(0, 10_000), cut=st.floats(0, 1), seed=st.integers(0, 2**32 - 1))
+def test_fast_spread_equals_reference_spread(geometry, count, phase, cut, seed):
+    """The numba spread (output rows four at a time over frames laid out one row apart, rows cut by the
+    output range one by one) equals the numpy reference spread; and spreading the output in two ranges,
+    as two threads do, gives bit for bit what one range gives."""
+    from bandloom.blocks.dsp import _polyphase_fast as fast
+    from bandloom.blocks.dsp import _polyphase_reference as reference
+    channels, decimation, length = geometry
+    phase = phase // decimation * decimation % channels        # the banks' phase is a multiple of D
+    rng = np.random.default_rng(seed)
+    taps = rng.standard_normal(length)
+    frames = complex_noise(rng, count * channels).reshape(count, channels)
+    size = (count - 1) * decimation + length
+    want = np.zeros(size, np.complex128)
+    reference.spread_frames(frames, reference.prepare_spread_taps(taps, channels), decimation, channels, phase, want)
+    prepared = fast.prepare_spread_taps(taps, channels)
+    whole = np.zeros(size, np.complex64)
+    fast.spread_frames(frames, prepared, decimation, channels, phase, whole)
+    assert relative_error(whole, want) <= 1e-5
+    split = int(cut * size)
+    halves = np.zeros(size, np.complex64)
+    fast.spread_frames(frames, prepared, decimation, channels, phase, halves, 0, split)
+    fast.spread_frames(frames, prepared, decimation, channels, phase, halves, split, size)
+    assert halves.tobytes() == whole.tobytes()
