@@ -235,8 +235,8 @@ def _spread_block_row(z, taps, line: int, real_from: int, real_to: int, acc, beg
 def _spread_rows(z, reversed_rows, first: int, rows: int, real_from: int, real_to: int, acc, begin: int,
                  end: int) -> None:
     """Sum ``rows`` (1 or 4) output rows into ``acc[:rows]`` (zeroed first), columns ``begin .. end - 1``:
-    output row ``first + a`` is ``sum_q reversed_rows[q] * z[first + a + q]``, the rows of ``z`` outside
-    ``real_from .. real_to - 1`` left out (they are zeros).
+    output row ``a`` is ``sum_q reversed_rows[q] * z[first + a + q]``, the rows of ``z`` outside
+    ``real_from .. real_to - 1`` left out (there are no frames there; ``first`` may be negative).
 
     The taps go in blocks of four rows. Where every row of ``z`` a block reads is real, the four output
     rows go together (``_add_4x4``: each row of ``z`` and of taps loaded once for all four); otherwise each
@@ -269,9 +269,9 @@ def _spread_jit(frames2, reversed_rows, rest_taps, decimation: int, channels: in
     The frames ``r, r + M/D, r + 2M/D, ...`` (one class ``r``) start their output whole rows apart, at
     sample ``r * D + j * M`` for the class's ``j``-th frame ``z[j]`` (turned so that its column 0 is the
     one that sample takes). Output row ``u`` of the class (M samples from ``r * D + u * M``) is then
-    ``sum_q taps_row[q] * z[u - q]``: the sum a fold makes, over the class's frames laid out as rows
-    (with room for ``full - 1`` rows before and after where there is no frame; they are never read), with
-    the tap rows reversed. So the output rows go four at a time (``_spread_rows``: each row of frames and taps loaded
+    ``sum_q taps_row[q] * z[u - q]`` over the frames that exist: the sum a fold makes, over the class's
+    frames laid out as rows, with the tap rows reversed. All frames of a class are turned alike; when
+    they need no turning and the class is every frame (M/D = 1), ``frames2`` is used as it is. So the output rows go four at a time (``_spread_rows``: each row of frames and taps loaded
     once for all four), summed in a small scratch and then added to ``out``; rows cut by ``[start, stop)``
     go one by one, summed the same way, so every sample comes out the same however threads share the
     output. The taps' partial last row (``rest_taps``, when M does not divide L) is added frame by frame
@@ -291,27 +291,32 @@ def _spread_jit(frames2, reversed_rows, rest_taps, decimation: int, channels: in
         first_row = max(0, (start - offset) // channels)
         last_row = min(n + full - 2, (stop - 1 - offset) // channels) if full > 0 else -1
         if first_row <= last_row:
-            # z: rows for frames first_row - (full - 1) .. last_row; where there is no frame, nothing
-            lines = last_row - first_row + full
-            z = np.empty((lines, M2 + _ROW_SKEW), dtype=np.float32)
-            real_from = max(0, full - 1 - first_row)     # the rows of z that hold frames
-            real_to = min(lines, n + full - 1 - first_row)
-            for line in range(real_from, real_to):      # the rest is never read
-                frame = r + (first_row - (full - 1) + line) * step
-                turn = 2 * ((phase + frame * decimation) % channels)
-                _copy(z[line, 0:M2 - turn], frames2[frame, turn:M2])
-                _copy(z[line, M2 - turn:M2], frames2[frame, 0:turn])
+            # z[j]: the class's frame j turned; output row u reads z[u - (full - 1) .. u], of which only
+            # rows 0 .. n - 1 exist (and only those are read)
+            first_frame = max(0, first_row - (full - 1))
+            last_frame = min(n - 1, last_row)
+            turn0 = (phase + r * decimation) % channels  # the same for every frame of the class
+            if step == 1 and turn0 == 0:
+                z = frames2                              # already in order and turned: no copy
+            else:
+                z = np.empty((n, M2 + _ROW_SKEW), dtype=np.float32)
+                turn = 2 * turn0
+                for j in range(first_frame, last_frame + 1):
+                    frame = r + j * step
+                    _copy(z[j, 0:M2 - turn], frames2[frame, turn:M2])
+                    _copy(z[j, M2 - turn:M2], frames2[frame, 0:turn])
             u = first_row
             while u <= last_row:
                 begin_sample = offset + u * channels
+                first = u - (full - 1)                   # z row of tap row 0 (reversed) for output row u
                 if u + 3 <= last_row and start <= begin_sample and begin_sample + 4 * channels <= stop:
-                    _spread_rows(z, reversed_rows, u - first_row, 4, real_from, real_to, acc, 0, M2)
+                    _spread_rows(z, reversed_rows, first, 4, 0, n, acc, 0, M2)
                     _add_into(out2[2 * begin_sample:2 * begin_sample + 4 * M2].reshape((4, M2)), acc, 0, M2)
                     u += 4
                     continue
                 begin = 2 * max(0, start - begin_sample)
                 end = 2 * min(channels, stop - begin_sample)
-                _spread_rows(z, reversed_rows, u - first_row, 1, real_from, real_to, acc, begin, end)
+                _spread_rows(z, reversed_rows, first, 1, 0, n, acc, begin, end)
                 _add_into(out2[2 * begin_sample:2 * begin_sample + M2].reshape((1, M2)), acc, begin, end)
                 u += 1
         if rest > 0:                                     # the partial last row of taps, frame by frame
