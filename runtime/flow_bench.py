@@ -13,7 +13,8 @@ Method (docs/performance.md):
 * The *baseline* is the flow's channelizer (each one fed straight by a
   source) run in this process on the same data (the short run's): the source
   block is run here too, untimed, and only the channelizer block's own work on
-  each chunk is timed; the fastest of ``runs`` passes (at least two) counts. The ratio is the flow's steady input rate over that in-process rate.
+  each chunk is timed; the fastest of ``runs`` passes (at least two) counts.
+  The ratio is the flow's steady input rate over that in-process rate.
 * Per block, its *busy* fraction: time inside its own code (produce, consume,
   finish) over the time from its first samples to its end, and its process's
   CPU time (every thread, user and system) per input sample, from the long run's
