@@ -250,3 +250,29 @@ def test_fast_spread_equals_reference_spread(geometry, count, phase, cut, seed):
     fast.spread_frames(frames, prepared, decimation, channels, phase, halves, 0, split)
     fast.spread_frames(frames, prepared, decimation, channels, phase, halves, split, size)
     assert halves.tobytes() == whole.tobytes()
+
+
+def test_the_kernels_compiled_under_another_module_name_do_not_poison_the_cache(tmp_path):
+    """The kernel file imported from the source tree as ``blocks.dsp._polyphase_fast`` (a developer's
+    script) and then the installed bank, both with one numba cache folder: the bank still runs. numba keys
+    its cache by source file and pickles the module's name into it; a foreign entry made every later
+    process fail with ModuleNotFoundError (found 2026-12-03)."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    import bandloom.blocks
+    tree = Path(bandloom.blocks.__file__).resolve().parent.parent     # holds a folder named "blocks"
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "numba")}
+    foreign = ("import sys, numpy as np; sys.path.insert(0, sys.argv[1]); "
+               "import blocks.dsp.banks as b; "
+               "print(b.AnalysisBank(8, 4, np.ones(24)).process(np.ones(64, np.complex64)).shape)")
+    installed = ("import numpy as np; from bandloom.blocks.dsp import AnalysisBank; "
+                 "print(AnalysisBank(8, 4, np.ones(24)).process(np.ones(64, np.complex64)).shape)")
+    for code in (foreign, installed, installed):
+        run = subprocess.run([sys.executable, "-c", code, str(tree)], env=env, cwd=tmp_path, capture_output=True, text=True,
+                             timeout=300)
+        assert run.returncode == 0, run.stderr[-2000:]
+        assert run.stdout.strip() == "(16, 8)"
+    assert list((tmp_path / "numba").rglob("*.nbi")), "the installed kernels were not cached"

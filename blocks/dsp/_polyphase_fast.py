@@ -10,7 +10,11 @@ tap shared by two neighbouring floats needed a shuffle per vector (measured:
 the fold 15-30 % faster at M = 256..4096, up to 2x at M = 64). The
 multiply-adds live in small never-inlined functions on plain contiguous
 slices (see ``_multiply_add``). The numba cache is on, so compilation happens
-once per installation.
+once per installation, but only when this module is imported as
+``bandloom.blocks.dsp._polyphase_fast``: numba keys its cache by source file
+and pickles the module's name into it, so a copy compiled while the file was
+imported under another name (``blocks.dsp...`` from the source tree) made
+every later run fail to load the cache with ModuleNotFoundError.
 
 The fold cuts each window into rows of M samples (``FoldTaps``): frame ``n + M/D`` sees frame ``n``'s
 window moved on by one row, so four such frames are folded together, each row of samples and of taps
@@ -30,8 +34,11 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit, uint64
 
+#: numba's on-disk cache, only under the installed name (see the module doc).
+_CACHE = __name__ == "bandloom.blocks.dsp._polyphase_fast"
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _multiply_add(acc, taps, samples) -> None:
     """acc += taps * samples, elementwise over float slices of one length (taps already doubled for I/Q).
 
@@ -69,7 +76,7 @@ class SpreadTaps(NamedTuple):
     rest: np.ndarray
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _set_4x4(acc, h, x, begin, end) -> None:
     """Four frames whose windows are one row apart, four rows of taps: for i < 4 and columns
     ``begin <= k < end``,
@@ -88,7 +95,7 @@ def _set_4x4(acc, h, x, begin, end) -> None:
         acc[3, k] = (g0 * y3 + g1 * y4) + (g2 * y5 + g3 * y6)
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _add_4x4(acc, h, x, begin, end) -> None:
     """As ``_set_4x4``, added to ``acc``."""
     for k in range(uint64(begin), uint64(end)):
@@ -100,7 +107,7 @@ def _add_4x4(acc, h, x, begin, end) -> None:
         acc[3, k] += (g0 * y3 + g1 * y4) + (g2 * y5 + g3 * y6)
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _add_4x1(acc, h, x, begin, end) -> None:
     """Four frames, one row of taps: ``acc[i, k] += h[0, k] * x[i, k]``."""
     for k in range(uint64(begin), uint64(end)):
@@ -111,7 +118,7 @@ def _add_4x1(acc, h, x, begin, end) -> None:
         acc[3, k] += g0 * x[3, k]
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _add_1x4(acc, h, x, begin, end) -> None:
     """One frame, four rows of taps, columns ``begin .. end - 1``: ``acc[0, k] += sum_q h[q, k] * x[q, k]``
     (the same sums as one row of ``_add_4x4``, so a row comes out the same either way)."""
@@ -119,21 +126,21 @@ def _add_1x4(acc, h, x, begin, end) -> None:
         acc[0, k] += (h[0, k] * x[0, k] + h[1, k] * x[1, k]) + (h[2, k] * x[2, k] + h[3, k] * x[3, k])
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _add_1x1(acc, h, x, begin, end) -> None:
     """One frame, one row of taps, columns ``begin .. end - 1`` (one row of ``_add_4x1``)."""
     for k in range(uint64(begin), uint64(end)):
         acc[0, k] += h[0, k] * x[0, k]
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _copy(target, source) -> None:
     """target[:] = source, as a plain loop (numba's slice assignment checks for overlap and copies twice)."""
     for k in range(target.shape[0]):
         target[k] = source[k]
 
 
-@njit(cache=True, fastmath=True, nogil=True)
+@njit(cache=_CACHE, fastmath=True, nogil=True)
 def _fold_group(buffer2, rows, lead: int, channels: int, starts, offsets, first: int, frames: int, step: int,
                 acc, out2) -> None:
     """Fold ``frames`` frames (1 or 4): frame ``i`` is frame ``first + i * step``, whose window starts
@@ -179,7 +186,7 @@ def _fold_group(buffer2, rows, lead: int, channels: int, starts, offsets, first:
         _copy(row[:turn], acc[i, M2 - turn:M2])
 
 
-@njit(cache=True, fastmath=True, nogil=True)
+@njit(cache=_CACHE, fastmath=True, nogil=True)
 def _fold_jit(buffer2, rows, lead: int, channels: int, starts, offsets, out2) -> None:
     """Frames whose windows lie whole rows apart are folded four at a time, the rest one by one.
 
@@ -208,7 +215,7 @@ def _fold_jit(buffer2, rows, lead: int, channels: int, starts, offsets, out2) ->
         _fold_group(buffer2, rows, lead, channels, starts, offsets, f, 1, 1, acc, out2)
 
 
-@njit(cache=True, fastmath=True, nogil=True, inline="never")
+@njit(cache=_CACHE, fastmath=True, nogil=True, inline="never")
 def _add_into(target, source, begin, end) -> None:
     """target[i, k] += source[i, k] for every row i of ``target`` and columns ``begin .. end - 1``."""
     for i in range(target.shape[0]):
@@ -216,7 +223,7 @@ def _add_into(target, source, begin, end) -> None:
             target[i, k] += source[i, k]
 
 
-@njit(cache=True, fastmath=True, nogil=True)
+@njit(cache=_CACHE, fastmath=True, nogil=True)
 def _spread_block_row(z, taps, line: int, real_from: int, real_to: int, acc, begin: int, end: int) -> None:
     """One output row, one block of tap rows (``taps``, 1 to 4 rows): ``acc[0] += sum_q taps[q] *
     z[line + q]``, leaving out the rows of ``z`` outside ``real_from .. real_to - 1`` (rows of zeros,
@@ -231,7 +238,7 @@ def _spread_block_row(z, taps, line: int, real_from: int, real_to: int, acc, beg
             _add_1x1(acc, taps[q:q + 1], z[line + q:line + q + 1], begin, end)
 
 
-@njit(cache=True, fastmath=True, nogil=True)
+@njit(cache=_CACHE, fastmath=True, nogil=True)
 def _spread_rows(z, reversed_rows, first: int, rows: int, real_from: int, real_to: int, acc, begin: int,
                  end: int) -> None:
     """Sum ``rows`` (1 or 4) output rows into ``acc[:rows]`` (zeroed first), columns ``begin .. end - 1``:
@@ -261,7 +268,7 @@ def _spread_rows(z, reversed_rows, first: int, rows: int, real_from: int, real_t
         q += width
 
 
-@njit(cache=True, fastmath=True, nogil=True)
+@njit(cache=_CACHE, fastmath=True, nogil=True)
 def _spread_jit(frames2, reversed_rows, rest_taps, decimation: int, channels: int, phase: int, out2,
                 start: int, stop: int) -> None:
     """Add every frame's weighted periods into ``out[start:stop]``, output row by output row.
@@ -271,8 +278,9 @@ def _spread_jit(frames2, reversed_rows, rest_taps, decimation: int, channels: in
     one that sample takes). Output row ``u`` of the class (M samples from ``r * D + u * M``) is then
     ``sum_q taps_row[q] * z[u - q]`` over the frames that exist: the sum a fold makes, over the class's
     frames laid out as rows, with the tap rows reversed. All frames of a class are turned alike; when
-    they need no turning and the class is every frame (M/D = 1), ``frames2`` is used as it is. So the output rows go four at a time (``_spread_rows``: each row of frames and taps loaded
-    once for all four), summed in a small scratch and then added to ``out``; rows cut by ``[start, stop)``
+    they need no turning and the class is every frame (M/D = 1), ``frames2`` is used as it is. So the
+    output rows go four at a time (``_spread_rows``: each row of frames and taps loaded once for all four),
+    summed in a small scratch and then added to ``out``; rows cut by ``[start, stop)``
     go one by one, summed the same way, so every sample comes out the same however threads share the
     output. The taps' partial last row (``rest_taps``, when M does not divide L) is added frame by frame
     after.
