@@ -192,3 +192,30 @@ def test_main_demo_audio_has_no_click_and_no_clipping(runs):
         assert np.count_nonzero(np.abs(x) >= 32767 / 32768) == 0
         sounding = np.nonzero(np.abs(x) > 1e-4)[0] / rate
         assert sounding[0] == pytest.approx(on, abs=0.01) and sounding[-1] == pytest.approx(off, abs=0.01)
+
+
+@pytest.mark.parametrize("name", ["wide.toml", "fan-out.toml"])
+def test_benchmark_flows_check_and_run_on_the_noise_their_script_makes(name, tmp_path):
+    """flows/bench (docs/performance.md's flows): from a copy, make-noise.py writes the 8 Mi-sample input,
+    the flow passes check, and a short run of it finishes with every sample delivered."""
+    import shutil
+    import subprocess
+    import sys
+    folder = tmp_path / "bench"
+    shutil.copytree(FLOWS / "bench", folder, ignore=shutil.ignore_patterns("noise.cf32"))
+    made = subprocess.run([sys.executable, folder / "make-noise.py"], capture_output=True, text=True, timeout=120)
+    assert made.returncode == 0, made.stderr
+    assert (folder / "noise.cf32").stat().st_size == 8 * 1024 * 1024 * 8          # 8 Mi cf32 samples
+    assert (FLOWS / "bench" / name).read_text().startswith("# ")
+    check = bandloom("check", folder / name)
+    assert check.returncode == 0, check.stderr
+    done, report = run_flow(folder / name, tmp_path / "out", "--set", "capture.duration=0.05 s",
+                            "--set", "capture.repeat=1")
+    assert done.returncode == 0, done.stderr
+    assert report["outcome"] == "finished"
+    assert all(b["state"] == "done" for b in report["blocks"].values())
+    for link in report["links"]:
+        assert link["dropped_samples"] == 0 and link["missing_samples"] == 0
+        assert link["received_samples"] in (None, link["sent_samples"])
+    rate = 61.44e6 if name == "wide.toml" else 6.4e6
+    assert report["links"][0]["sent_samples"] == round(0.05 * rate)     # the reader's 0.05 s, all sent
