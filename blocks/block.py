@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import sys
 import time
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import IO, Any, ClassVar
@@ -198,6 +198,13 @@ class BlockContext:
     restarted instance, the absolute index up to which its predecessors last
     reported having received (what they received after that report is
     counted lost at the restart).
+
+    ``output_room(port, shape, dtype)``, when the runtime gives it, lends
+    memory for the block's next chunk on ``port`` (an array of that shape
+    and dtype, or None): rows written there are sent from where they lie,
+    with no copy (a shared-memory ring). A block that asks must return its
+    next chunk on that port in that array (all its rows, or the first ones)
+    before any other chunk on the port; what it does not use is taken back.
     """
 
     name: str
@@ -207,6 +214,7 @@ class BlockContext:
     restart: int = 0
     resumed_at: dict[str, int] = field(default_factory=dict)
     design_folder: Path | None = None     # banks designed already, to load instead of designing again
+    output_room: Callable[[str, tuple[int, ...], np.dtype], np.ndarray | None] | None = None
 
     def input_path(self, text: str) -> Path:
         """A path from the flow file: relative to the flow file's folder."""

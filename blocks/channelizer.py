@@ -88,7 +88,11 @@ class Channelizer(Block):
             if len(edge):
                 out.append(Chunk(edge, first))
         first = self.bank.frames_produced
-        out.append(Chunk(self.bank.process(chunk.data), first))
+        room = None
+        if not out and self.context.output_room is not None:     # frames made where they are sent from
+            room = self.context.output_room("channels", (self.bank.frames_for(len(chunk.data)), self.bank.channels),
+                                            np.dtype(np.complex64))
+        out.append(Chunk(self.bank.process(chunk.data, out=room), first))
         return {"channels": out}
 
 

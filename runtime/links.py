@@ -283,6 +283,7 @@ class Outlet(_LinkEnd):
         self._held_since = 0.0
         self.copied_bytes = 0
         self.shared_messages = 0                      # of messages: their rows went through the ring
+        self._lent: np.ndarray | None = None         # room of the ring lent to the block (see lend_room)
         self.next_index = spec.resume_index or 0    # index after the last row sent
         self.offered_index = self.next_index        # index after the last row offered, sent or dropped
         self.seq = spec.resume_seq
@@ -329,10 +330,50 @@ class Outlet(_LinkEnd):
         self.blocked_seconds += time.monotonic() - started
         return True
 
+    def lend_room(self, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray | None:
+        """Room in the link's ring for the next chunk, shape ``shape`` (rows first), for the block to write
+        its rows where they are sent from, with no copy; None when that cannot be: no ring, a pick of
+        columns, another sample type or row shape, rows waiting in the batch, fewer rows than a batch or
+        more than a message, no room now, or the consumer down. The next :meth:`send` must carry this
+        room's rows (all, or a first part); :meth:`take_back_room` gives up room the block did not use."""
+        ring, rows = self.ring, shape[0] if shape else 0
+        row_shape = (self.stream.width,) if self.stream.kind == "channels" else ()
+        if (ring is None or self.columns is not None or self._held or ring.reserved is not None
+                or not self.attached or np.dtype(dtype) != self.stream.dtype or tuple(shape[1:]) != row_shape
+                or not self.batch_rows <= rows <= self.rows_per_message):
+            return None
+        room = ring.reserve(rows * self.stream.width * self.stream.dtype.itemsize)
+        if room is None:
+            return None
+        self._lent = room.view(self.stream.dtype).reshape(shape)
+        return self._lent
+
+    def take_back_room(self) -> None:
+        """Give up the room lent to the block if no chunk was sent from it."""
+        if self._lent is not None:
+            self._lent = None
+            if self.ring is not None:
+                self.ring.cancel()
+
     def send(self, chunk: Chunk, *, picked: np.ndarray | None = None) -> None:
         """Send a chunk (the link's columns of it): whole messages of at most ``rows_per_message`` rows go
         now; rows that would make a message smaller than a batch wait (see the module doc). ``picked`` is
-        the link's one column already taken out by the caller (see :func:`column_major`)."""
+        the link's one column already taken out by the caller (see :func:`column_major`). A chunk written
+        in the room :meth:`lend_room` gave goes as one message from where it lies."""
+        if self._lent is not None:
+            lent, self._lent = self._lent, None
+            data = chunk.data
+            if (picked is not None or not data.flags.c_contiguous or data.dtype != lent.dtype
+                    or data.ctypes.data != lent.ctypes.data or data.nbytes > lent.nbytes):
+                if self.ring is not None:
+                    self.ring.cancel()
+                raise RuntimeError(f"link {self.spec.label}: the block lent room in the ring sent another "
+                                   f"chunk first")
+            if len(data):
+                self._send_rows(data, chunk.first_index, chunk.discontinuity)
+            elif self.ring is not None:
+                self.ring.cancel()
+            return
         if picked is not None:
             data = picked
             self.copied_bytes += picked.nbytes           # its share of the caller's one transposing copy

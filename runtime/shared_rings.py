@@ -6,9 +6,11 @@ sender's ZeroMQ thread writes it into the socket, the receiver's reads it
 out; docs/performance.md).
 A link whose two ends are worker processes forked by the same launcher (see
 :mod:`.launcher`) can instead pass its samples through a ring of shared memory
-that both map: the sender copies a message's rows into the ring once and
-ZeroMQ carries only the header and a 16-byte reference; the receiver hands the
-block a numpy array viewing the ring, with no copy at all.
+that both map: the sender copies a message's rows into the ring once (or the
+block makes them there: :meth:`RingWriter.reserve`, lent by
+``Outlet.lend_room``) and ZeroMQ carries only the header and a 16-byte
+reference; the receiver hands the block a numpy array viewing the ring, with
+no copy at all.
 
 The ring is an anonymous memory file (``memfd_create``) that the launcher
 makes before it forks either end and that both inherit: it has no name in any

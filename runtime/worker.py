@@ -38,6 +38,7 @@ from collections.abc import Callable
 from functools import partial
 from pathlib import Path
 
+import numpy as np
 import setproctitle
 import zmq
 from bandloom.blocks.block import Block, BlockContext, Output, chunks_of
@@ -69,6 +70,7 @@ class Worker:
         self.released = False
         self.inlets: list[Inlet] = []
         self.outlets: dict[str, list[Outlet]] = {}
+        self.lent_to: list[Outlet] = []        # outlets that lent the block room for its next chunk
         self.block: Block | None = None
         self.last_stats = 0.0
         self.rows_in = 0
@@ -152,7 +154,8 @@ class Worker:
         context = BlockContext(self.name, Path(spec.flow_path), Path(spec.output_dir), spec.placeholders,
                                restart=spec.restart, design_folder=Path(spec.design_folder) if spec.design_folder else None,
                                resumed_at={port: link.resume_index for port, link in spec.inputs.items()
-                                           if link.resume_index is not None})
+                                           if link.resume_index is not None},
+                               output_room=self.lend_output_room)
         block = self.block = cls(spec.params, context)
         inputs = {port: link.stream for port, link in spec.inputs.items()}
         block.output_streams(dict(inputs))          # validates again, in this process
@@ -168,13 +171,29 @@ class Worker:
         return block
 
     # -- moving chunks -----------------------------------------------------------------------
+    def lend_output_room(self, port: str, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray | None:
+        """The block's ``context.output_room``: room in the ring of the port's one link (see
+        :meth:`Outlet.lend_room`), None when the port has no link or several."""
+        outlets = self.outlets.get(port, [])
+        if len(outlets) != 1:
+            return None
+        room = outlets[0].lend_room(shape, dtype)
+        if room is not None:
+            self.lent_to.append(outlets[0])
+        return room
+
     def emit(self, produced: Output | None) -> None:
-        for port, chunks in (produced or {}).items():
-            for chunk in chunks_of(chunks):
-                self.rows_out += chunk.count
-                outlets = self.outlets.get(port, [])
-                for outlet, picked in zip(outlets, column_major(chunk, outlets)):
-                    outlet.send(chunk, picked=picked)
+        try:
+            for port, chunks in (produced or {}).items():
+                for chunk in chunks_of(chunks):
+                    self.rows_out += chunk.count
+                    outlets = self.outlets.get(port, [])
+                    for outlet, picked in zip(outlets, column_major(chunk, outlets)):
+                        outlet.send(chunk, picked=picked)
+        finally:
+            for outlet in self.lent_to:               # room lent and not sent from
+                outlet.take_back_room()
+            self.lent_to.clear()
 
     def wait_for_go(self) -> None:
         """The start barrier: a source produces nothing until every process of the flow has opened its

@@ -3,6 +3,7 @@
 import numpy as np
 import pytest
 from bandloom.blocks.dsp import AnalysisBank, SynthesisBank, channel_offsets
+from bandloom.blocks.dsp.errors import ParameterError
 from conftest import analysis_oracle, complex_noise, relative_error, synthesis_oracle
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -276,3 +277,33 @@ def test_the_kernels_compiled_under_another_module_name_do_not_poison_the_cache(
         assert run.returncode == 0, run.stderr[-2000:]
         assert run.stdout.strip() == "(16, 8)"
     assert list((tmp_path / "numba").rglob("*.nbi")), "the installed kernels were not cached"
+
+
+@pytest.mark.parametrize("kernel", ["reference", "fast"])
+@pytest.mark.parametrize("threads", [1, 2])
+def test_frames_written_where_the_caller_says_are_the_frames_returned(rng, kernel, threads):
+    """process(x, out=room) writes into ``room`` and returns it, bit for bit what process(x) returns,
+    chunk after chunk (the first chunk's frames partly from history, the rest from the chunk);
+    frames_for tells the room's rows beforehand."""
+    taps = rng.standard_normal(64 * 8)
+    x = complex_noise(rng, 200_000)
+    plain = AnalysisBank(64, 32, taps, kernel=kernel, threads=threads)
+    placed = AnalysisBank(64, 32, taps, kernel=kernel, threads=threads)
+    for a, b in [(0, 1000), (1000, 1001), (1001, 150_000), (150_000, 200_000)]:
+        want = plain.process(x[a:b])
+        room = np.full((placed.frames_for(b - a), 64), np.nan, dtype=np.complex64)
+        got = placed.process(x[a:b], out=room)
+        assert got is room and np.array_equal(got, want)
+    assert placed.frames_produced == plain.frames_produced
+
+
+@pytest.mark.parametrize("bad", [np.zeros((3, 64), np.complex64), np.zeros((4, 64), np.complex128),
+                                 np.zeros((64, 4), np.complex64).T, [[0j] * 64] * 4])
+def test_a_room_of_the_wrong_kind_is_refused_naming_out(rng, bad):
+    """``out`` of the wrong shape, type or layout (or not an array) is refused before any input is taken."""
+    bank = AnalysisBank(64, 32, rng.standard_normal(256))
+    x = complex_noise(rng, 128)                       # 4 frames
+    assert bank.frames_for(len(x)) == 4
+    with pytest.raises(ParameterError, match="out must be a writeable C-contiguous complex64 array of shape"):
+        bank.process(x, out=bad)
+    assert bank.frames_produced == 0 and bank.frames_for(len(x)) == 4

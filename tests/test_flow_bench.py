@@ -48,13 +48,14 @@ def test_bench_flow_measures_both_lengths_and_what_each_link_carries(tmp_path):
     links = {x["link"]: x for x in result["links"]}
     assert links["band.samples -> split.samples"]["bytes_per_input_sample"] == 8
     assert links["split.channels -> sink.samples"]["bytes_per_input_sample"] == 16
-    # Every message goes through the link's shared memory, each byte copied into it once (16 per input
-    # sample): whole chunks as they come, and the last, short chunk of the source (16,000,000 mod 65,536
-    # samples, small enough to wait in a batch) into a batch that lies in the ring already.
+    # Every message goes through the link's shared memory. The channelizer makes each whole chunk's frames
+    # in room the link lends it in the ring (no copy); only the last, short chunk of the source
+    # (16,000,000 mod 65,536 = 9,216 samples: 1,152 frames of 16 channels, fewer than a 256 KiB batch of
+    # 2,048) waits in a batch and is copied into it: 1,152 x 16 x 8 bytes over 16,000,000 samples.
     wide = links["split.channels -> sink.samples"]
     if shared_rings.SUPPORTED:
         assert wide["shared_memory_fraction"] == 1.0
-        assert wide["copied_bytes_per_input_sample"] == 16
+        assert wide["copied_bytes_per_input_sample"] == 1152 * 16 * 8 / 16_000_000
     busy = {b["block"]: b["busy_fraction"] for b in result["blocks"]}
     assert 0 < busy["split"] <= 1.0
     cpu = {b["block"]: b["cpu_ns_per_input_sample"] for b in result["blocks"]}

@@ -320,3 +320,56 @@ def test_a_consumer_that_keeps_every_message_gets_the_next_inline_not_a_stall(en
         kept.append(inlet.receive())
     assert outlet.stats().shared_messages == 4 and outlet.stats().messages == 5
     assert [int(c.data[-1].real) for c in kept] == [0, 1, 2, 3, 4]
+
+
+WIDE16 = StreamInfo("channels", "cf32", 1e4, 0.0, channels=tuple(range(16)), channel_frequencies=tuple(range(16)))
+
+
+def test_rows_made_in_lent_room_go_from_where_they_lie(ends, rng):
+    """A block writes its next chunk in room the link lends it in the ring: the consumer gets it intact, the
+    message went through the ring, and no byte was copied; room taken back unused is given again for the
+    next chunk, and ordinary sends in between still arrive."""
+    outlet, inlet = ends(stream=WIDE16, batch_seconds=10.0, ring=4 << 20)
+    rows = outlet.batch_rows                                  # 256 KiB / 128-byte rows
+    frames = (rng.standard_normal((3 * rows, 16)) + 1j * rng.standard_normal((3 * rows, 16))).astype(np.complex64)
+    room = outlet.lend_room((rows, 16), np.dtype(np.complex64))
+    assert room is not None and room.shape == (rows, 16)
+    room[...] = frames[:rows]
+    outlet.send(Chunk(room, 0))
+    unused = outlet.lend_room((rows, 16), np.dtype(np.complex64))
+    assert unused is not None
+    outlet.take_back_room()                                   # the block made nothing there
+    outlet.send(Chunk(frames[rows:2 * rows].copy(), rows))   # an ordinary chunk: copied into the ring
+    again = outlet.lend_room((rows, 16), np.dtype(np.complex64))
+    assert again is not None
+    again[...] = frames[2 * rows:]
+    outlet.send(Chunk(again, 2 * rows))
+    outlet.end()
+    got = []
+    while (chunk := inlet.receive()) is not None:
+        got.append(chunk.data.copy())
+    assert np.array_equal(np.concatenate(got), frames)
+    stats = outlet.stats()
+    assert stats.shared_messages == stats.messages == 3
+    assert stats.copied_bytes == frames[rows:2 * rows].nbytes  # only the ordinary chunk was copied
+
+
+def test_room_is_lent_only_where_rows_can_go_as_they_are(ends, rng):
+    """No room without a ring, for a pick of columns, for another sample type or row shape, for fewer rows
+    than a batch or more than a message, or while rows wait in the batch; a chunk sent while room is lent
+    that is not in it is refused with the link named (it would have been written over)."""
+    plain, _ = ends(stream=WIDE16, batch_seconds=10.0)
+    assert plain.lend_room((4096, 16), np.dtype(np.complex64)) is None          # no ring
+    picked, _ = ends(stream=WIDE16, columns=(0, 1), batch_seconds=10.0, ring=4 << 20)
+    assert picked.lend_room((4096, 2), np.dtype(np.complex64)) is None
+    outlet, _ = ends(stream=WIDE16, batch_seconds=10.0, ring=4 << 20)
+    rows = outlet.batch_rows
+    for shape, dtype in [((rows, 16), np.complex128), ((rows, 8), np.complex64), ((rows - 1, 16), np.complex64),
+                         ((outlet.rows_per_message + 1, 16), np.complex64)]:
+        assert outlet.lend_room(shape, np.dtype(dtype)) is None, (shape, dtype)
+    outlet.send(Chunk(np.zeros((10, 16), np.complex64), 0))                  # waits in the batch
+    assert outlet.holding and outlet.lend_room((rows, 16), np.dtype(np.complex64)) is None
+    outlet.flush()
+    assert outlet.lend_room((rows, 16), np.dtype(np.complex64)) is not None
+    with pytest.raises(RuntimeError, match="a.out -> b.in.*lent room"):
+        outlet.send(Chunk(np.zeros((rows, 16), np.complex64), 10))

@@ -243,3 +243,62 @@ def test_the_flow_option_is_checked_like_any_other(tmp_path):
     checked = bandloom("check", path)
     assert checked.returncode != 0
     assert f"{path}:3" in checked.stderr and "shared_memory" in checked.stderr, checked.stderr
+
+
+ROUND_TRIP = """
+[flow]
+shared_memory = {shared}
+
+[blocks.band]
+type = "scenario"
+sample_rate = 800000
+duration = 2
+chunk_size = 65536
+transmitters = [{{ kind = "cw", frequency = 1000.0, level = -10.0 }}, {{ kind = "fm", frequency = -210000.0, level = -30.0 }}]
+
+[blocks.split]
+type = "channelizer"
+channels = 8
+
+[blocks.merge]
+type = "synthesis"
+
+[blocks.wide]
+type = "iq-writer"
+path = "all.cf32"
+
+[[links]]
+from = "band.samples"
+to = "split.samples"
+
+[[links]]
+from = "split.channels"
+to = "merge.channels"
+
+[[links]]
+from = "merge.samples"
+to = "wide.samples"
+"""
+
+
+@pytest.mark.skipif(not shared_rings.SUPPORTED, reason="rings are used on x86-64 only (memory order)")
+def test_a_channelizer_makes_its_frames_in_the_ring_and_they_arrive_as_through_sockets(tmp_path):
+    """A channelizer whose one link has a ring makes each chunk's frames in room the link lends it there:
+    the merged band is byte for byte what the same flow writes through sockets, nothing is lost, and the
+    channelizer's link copied no byte (every chunk, the last one's 27,136 samples too, makes at least a
+    256 KiB batch of frames, so each goes as it was made)."""
+    reports = {}
+    for shared in ("true", "false"):
+        folder = tmp_path / shared
+        folder.mkdir()
+        (folder / "flow.toml").write_text(ROUND_TRIP.format(shared=shared))
+        done, reports[shared] = run_flow(folder / "flow.toml", folder)
+        assert done.returncode == 0 and "verdict: no sample lost" in done.stderr, done.stderr
+    ours = (tmp_path / "true" / "all.cf32").read_bytes()
+    assert len(ours) == 1_600_000 * 8 and ours == (tmp_path / "false" / "all.cf32").read_bytes()
+    channels = next(link for link in reports["true"]["links"] if link["link"].startswith("split.channels"))
+    assert channels["shared_memory_messages"] == channels["sent_messages"] > 0
+    assert channels["sent_samples"] == channels["received_samples"]
+    assert channels["copied_bytes"] == 0
+    through_sockets = next(link for link in reports["false"]["links"] if link["link"].startswith("split.channels"))
+    assert through_sockets["copied_bytes"] == 0 and through_sockets["shared_memory_messages"] == 0

@@ -254,19 +254,39 @@ class AnalysisBank:
         self._consumed = 0
         self._frames = 0
 
-    def process(self, x: np.ndarray) -> np.ndarray:
-        """Take the next chunk of input; return the frames it completes, shape ``(F, M)``."""
+    def frames_for(self, samples: int) -> int:
+        """How many frames the next ``process`` of ``samples`` input samples returns."""
+        return -(-(self._consumed + samples) // self._decimation) - self._frames
+
+    def process(self, x: np.ndarray, *, out: np.ndarray | None = None) -> np.ndarray:
+        """Take the next chunk of input; return the frames it completes, shape ``(F, M)``.
+
+        ``out``, keyword-only: where to write them, a C-contiguous complex64 array of shape
+        ``(frames_for(len(x)), M)`` (such as room in a shared-memory ring, so that they need no copy
+        after); it is returned.
+        """
         x = np.asarray(x)
         if x.ndim != 1:
             raise ParameterError(f"process() takes a 1-D chunk of samples, got shape {x.shape}!", param="x")
         M, D, L = self._channels, self._decimation, len(self._taps)
+        given = out
+        if given is not None:
+            shape = (self.frames_for(len(x)), M)
+            if not (isinstance(given, np.ndarray) and given.dtype == np.complex64 and given.shape == shape
+                    and given.flags.c_contiguous and given.flags.writeable):
+                raise ParameterError(f"Parameter out must be a writeable C-contiguous complex64 array of shape "
+                                     f"{shape}, got {getattr(given, 'dtype', type(given).__name__)} "
+                                     f"{getattr(given, 'shape', '')}!", param="out")
         x = np.ascontiguousarray(x, dtype=np.complex64)
         before = self._consumed                      # absolute index of x[0]
         self._consumed += len(x)
         total_frames = -(-self._consumed // D)
         frame_numbers = np.arange(self._frames, total_frames, dtype=np.int64)
         self._frames = total_frames
-        out: np.ndarray = np.empty((len(frame_numbers), M), dtype=self._work_dtype)
+        if given is not None and self._work_dtype == np.complex64:
+            out = given                              # the frames are folded and transformed where they go
+        else:
+            out = np.empty((len(frame_numbers), M), dtype=self._work_dtype)
         # Absolute index of each frame's first window sample; a frame whose
         # window starts before x[0] reads from (history + head of x), the rest
         # read straight from x without copying the chunk.
@@ -295,6 +315,9 @@ class AnalysisBank:
             keep = min(len(x), L - 1)
             self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
                 else x[len(x) - keep:].copy()
+        if given is not None and out is not given:     # the reference kernel's float64 frames, rounded
+            given[...] = out
+            return given
         return out.astype(np.complex64, copy=False)
 
     def skip(self, count: int) -> np.ndarray:
