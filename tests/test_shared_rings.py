@@ -183,18 +183,13 @@ shared_memory = {shared}
 type = "scenario"
 sample_rate = 800000
 duration = 2
-chunk_size = 10000
+chunk_size = {chunk}
 transmitters = [{{ kind = "cw", frequency = 1000.0, level = -10.0 }}, {{ kind = "cw", frequency = -210000.0, level = -30.0 }}]
 
 [blocks.split]
 type = "channelizer"
 channels = 8
-
-[blocks.rec]
-type = "iq-writer"
-path = "ch{{channel}}.cf32"
-per_channel = {{ from = "split.channels", select = "all" }}
-
+{writers}
 [blocks.merge]
 type = "synthesis"
 
@@ -214,6 +209,29 @@ to = "merge.channels"
 from = "merge.samples"
 to = "wide.samples"
 """
+
+WRITERS = """
+[blocks.rec]
+type = "iq-writer"
+path = "ch{channel}.cf32"
+per_channel = { from = "split.channels", select = "all" }
+"""
+
+
+def run_both_ways(tmp_path, names, **fill):
+    """FLOW with and without shared memory: each run ends with nothing lost, every file in ``names`` is byte
+    for byte the same both ways; returns the two reports by "true" / "false"."""
+    reports = {}
+    for shared in ("true", "false"):
+        folder = tmp_path / shared
+        folder.mkdir()
+        (folder / "flow.toml").write_text(FLOW.format(shared=shared, **fill))
+        done, reports[shared] = run_flow(folder / "flow.toml", folder)
+        assert done.returncode == 0 and "verdict: no sample lost" in done.stderr, done.stderr
+    for name in names:
+        ours = (tmp_path / "true" / name).read_bytes()
+        assert len(ours) > 0 and ours == (tmp_path / "false" / name).read_bytes(), name
+    return reports
 
 
 @pytest.mark.skipif(not shared_rings.SUPPORTED, reason="rings are used on x86-64 only (memory order)")
@@ -221,64 +239,11 @@ def test_a_flow_through_shared_memory_writes_what_it_writes_through_sockets(tmp_
     """Eight per-channel writers, and the band put back together from all eight channels (a wide link):
     every file is byte for byte the same with shared memory and without, nothing is lost, and the report
     says which messages went through it."""
-    reports = {}
-    for shared in ("true", "false"):
-        folder = tmp_path / shared
-        folder.mkdir()
-        (folder / "flow.toml").write_text(FLOW.format(shared=shared))
-        done, reports[shared] = run_flow(folder / "flow.toml", folder)
-        assert done.returncode == 0 and "verdict: no sample lost" in done.stderr, done.stderr
-    for name in [f"ch{c}.cf32" for c in range(8)] + ["all.cf32"]:
-        ours = (tmp_path / "true" / name).read_bytes()
-        assert len(ours) > 0 and ours == (tmp_path / "false" / name).read_bytes(), name
+    reports = run_both_ways(tmp_path, [f"ch{c}.cf32" for c in range(8)] + ["all.cf32"], chunk=10000, writers=WRITERS)
     for link in reports["true"]["links"]:
         assert link["shared_memory_messages"] == link["sent_messages"] > 0, link
         assert link["sent_samples"] == link["received_samples"]
     assert all(link["shared_memory_messages"] == 0 for link in reports["false"]["links"])
-
-
-def test_the_flow_option_is_checked_like_any_other(tmp_path):
-    path = tmp_path / "flow.toml"
-    path.write_text(FLOW.format(shared='"yes"'))
-    checked = bandloom("check", path)
-    assert checked.returncode != 0
-    assert f"{path}:3" in checked.stderr and "shared_memory" in checked.stderr, checked.stderr
-
-
-ROUND_TRIP = """
-[flow]
-shared_memory = {shared}
-
-[blocks.band]
-type = "scenario"
-sample_rate = 800000
-duration = 2
-chunk_size = 65536
-transmitters = [{{ kind = "cw", frequency = 1000.0, level = -10.0 }}, {{ kind = "fm", frequency = -210000.0, level = -30.0 }}]
-
-[blocks.split]
-type = "channelizer"
-channels = 8
-
-[blocks.merge]
-type = "synthesis"
-
-[blocks.wide]
-type = "iq-writer"
-path = "all.cf32"
-
-[[links]]
-from = "band.samples"
-to = "split.samples"
-
-[[links]]
-from = "split.channels"
-to = "merge.channels"
-
-[[links]]
-from = "merge.samples"
-to = "wide.samples"
-"""
 
 
 @pytest.mark.skipif(not shared_rings.SUPPORTED, reason="rings are used on x86-64 only (memory order)")
@@ -287,18 +252,17 @@ def test_a_channelizer_makes_its_frames_in_the_ring_and_they_arrive_as_through_s
     the merged band is byte for byte what the same flow writes through sockets, nothing is lost, and the
     channelizer's link copied no byte (every chunk, the last one's 27,136 samples too, makes at least a
     256 KiB batch of frames, so each goes as it was made)."""
-    reports = {}
-    for shared in ("true", "false"):
-        folder = tmp_path / shared
-        folder.mkdir()
-        (folder / "flow.toml").write_text(ROUND_TRIP.format(shared=shared))
-        done, reports[shared] = run_flow(folder / "flow.toml", folder)
-        assert done.returncode == 0 and "verdict: no sample lost" in done.stderr, done.stderr
-    ours = (tmp_path / "true" / "all.cf32").read_bytes()
-    assert len(ours) == 1_600_000 * 8 and ours == (tmp_path / "false" / "all.cf32").read_bytes()
+    reports = run_both_ways(tmp_path, ["all.cf32"], chunk=65536, writers="")
+    assert (tmp_path / "true" / "all.cf32").stat().st_size == 1_600_000 * 8
     channels = next(link for link in reports["true"]["links"] if link["link"].startswith("split.channels"))
     assert channels["shared_memory_messages"] == channels["sent_messages"] > 0
     assert channels["sent_samples"] == channels["received_samples"]
     assert channels["copied_bytes"] == 0
-    through_sockets = next(link for link in reports["false"]["links"] if link["link"].startswith("split.channels"))
-    assert through_sockets["copied_bytes"] == 0 and through_sockets["shared_memory_messages"] == 0
+
+
+def test_the_flow_option_is_checked_like_any_other(tmp_path):
+    path = tmp_path / "flow.toml"
+    path.write_text(FLOW.format(shared='"yes"', chunk=10000, writers=""))
+    checked = bandloom("check", path)
+    assert checked.returncode != 0
+    assert f"{path}:3" in checked.stderr and "shared_memory" in checked.stderr, checked.stderr

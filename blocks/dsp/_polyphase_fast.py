@@ -158,22 +158,21 @@ def _fold_group(buffer2, rows, lead: int, channels: int, starts, offsets, first:
         q = 4
     else:
         acc[:frames, :] = 0.0
-    while q + 4 <= full:
+    while q < full:                                      # four rows of taps at a time, then one by one
+        n = 4 if q + 4 <= full else 1
         s = x0 + q * M2
-        samples = buffer2[s:s + (4 + extra) * M2].reshape((4 + extra, M2))
+        samples = buffer2[s:s + (n + extra) * M2].reshape((n + extra, M2))
+        taps = rows[first_full + q:first_full + q + n]
         if frames == 4:
-            _add_4x4(acc, rows[first_full + q:first_full + q + 4], samples, 0, M2)
+            if n == 4:
+                _add_4x4(acc, taps, samples, 0, M2)
+            else:
+                _add_4x1(acc, taps, samples, 0, M2)
+        elif n == 4:
+            _add_1x4(acc, taps, samples, 0, M2)
         else:
-            _add_1x4(acc, rows[first_full + q:first_full + q + 4], samples, 0, M2)
-        q += 4
-    while q < full:
-        s = x0 + q * M2
-        samples = buffer2[s:s + (1 + extra) * M2].reshape((1 + extra, M2))
-        if frames == 4:
-            _add_4x1(acc, rows[first_full + q:first_full + q + 1], samples, 0, M2)
-        else:
-            _add_1x1(acc, rows[first_full + q:first_full + q + 1], samples, 0, M2)
-        q += 1
+            _add_1x1(acc, taps, samples, 0, M2)
+        q += n
     if lead > 0:                                         # the partial first row: window samples 0 .. M - lead - 1
         part = M2 - 2 * lead
         for i in range(frames):
