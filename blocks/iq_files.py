@@ -17,7 +17,7 @@ import numpy as np
 from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Pacer, Param, Port, StreamInfo
 from .output_files import replace_file, whole_records
 from .params import UNIT_BOUNDS, shortened, toml_repr
-from .sample_formats import COMPLEX_FORMATS, FORMATS
+from .sample_formats import COMPLEX_FORMATS, FORMATS, ByteOrder
 
 __all__ = ["IQReader", "IQWriter", "read_sigmf", "sigmf_meta_path", "write_sigmf"]
 
@@ -229,7 +229,18 @@ class IQReader(Block):
             self.position = 0
         n = min(self.params["chunk_size"], self.count - self.position)
         offset = self.file.tell()
-        raw = self.file.read(n * self.sample_bytes)
+        # native cf32 / f32 is read straight into room the output link lends (its shared-memory ring), if any
+        byte_order: ByteOrder = "big" if self.byte_order == "big" else "little"
+        room = None
+        if self.format.is_plain(byte_order) and self.context.output_room is not None:
+            sample_type = np.dtype(np.complex64 if self.format.is_complex else np.float32)
+            room = self.context.output_room("samples", (n,), sample_type)
+        raw: bytes | np.ndarray
+        if room is not None:
+            raw = room.view(np.uint8)
+            raw = raw[:self.file.readinto(raw)]  # type: ignore[attr-defined]  # a BufferedReader: open(..., "rb")
+        else:
+            raw = self.file.read(n * self.sample_bytes)
         if len(raw) < n * self.sample_bytes:
             # the file is shorter than when the run started: deliver the whole samples, then fail
             end = offset + len(raw)
@@ -245,7 +256,7 @@ class IQReader(Block):
             if self.truncated:
                 raise BlockError(self.truncated)
             return None
-        data = self.format.decode(raw[:n * self.sample_bytes], "big" if self.byte_order == "big" else "little")
+        data = room[:n] if room is not None else self.format.decode(raw[:n * self.sample_bytes], byte_order)
         chunk = Chunk(data, self.index)
         self.position += n
         self.index += n

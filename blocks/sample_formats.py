@@ -77,11 +77,16 @@ class SampleFormat:
         base = np.dtype(self.component)
         return base.newbyteorder("<" if byte_order == "little" else ">") if base.itemsize > 1 else base
 
+    def is_plain(self, byte_order: ByteOrder = "little") -> bool:
+        """Its bytes in ``byte_order`` are already the samples :meth:`decode` gives (native float32
+        components, no offset or scale): they can be read straight into a sample array."""
+        return self.component_dtype(byte_order) == np.float32 and not self.offset and self.scale == 1.0
+
     def decode(self, raw: bytes | memoryview | np.ndarray, byte_order: ByteOrder = "little") -> np.ndarray:
         """Bytes (a whole number of samples) to complex64 or float32 samples, full scale 1.0. Native float32
         components with no offset or scale are viewed, not copied (read-only when ``raw`` is bytes)."""
         values = np.frombuffer(raw, dtype=self.component_dtype(byte_order))
-        plain = values.dtype == np.float32 and not self.offset and self.scale == 1.0
+        plain = self.is_plain(byte_order)
         values = values if plain else values.astype(np.float32)
         if self.offset:
             values += np.float32(self.offset)

@@ -334,15 +334,20 @@ class Outlet(_LinkEnd):
         """Room in the link's ring for the next chunk, shape ``shape`` (rows first), for the block to write
         its rows where they are sent from, with no copy; None when that cannot be: no ring, a pick of
         columns, another sample type or row shape, rows waiting in the batch, fewer rows than a batch or
-        more than a message, no room now, or the consumer down. The next :meth:`send` must carry this
-        room's rows (all, or a first part); :meth:`take_back_room` gives up room the block did not use."""
+        more than a message, no room (waited for as :meth:`send` waits, except on a ``drop`` link), or the
+        consumer down. The next :meth:`send` must carry this room's rows (all, or a first part);
+        :meth:`take_back_room` gives up room the block did not use."""
         ring, rows = self.ring, shape[0] if shape else 0
         row_shape = (self.stream.width,) if self.stream.kind == "channels" else ()
         if (ring is None or self.columns is not None or self._held or ring.reserved is not None
                 or not self.attached or np.dtype(dtype) != self.stream.dtype or tuple(shape[1:]) != row_shape
                 or not self.batch_rows <= rows <= self.rows_per_message):
             return None
-        room = ring.reserve(rows * self.stream.width * self.stream.dtype.itemsize)
+        nbytes = rows * self.stream.width * self.stream.dtype.itemsize
+        if not ring.has_room(nbytes) and ring.should_wait(nbytes):     # as send would wait: the consumer is behind
+            if self.when_full is WhenFull.DROP or not self._wait_for_ring(ring, nbytes):
+                return None
+        room = ring.reserve(nbytes)
         if room is None:
             return None
         self._lent = room.view(self.stream.dtype).reshape(shape)

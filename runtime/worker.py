@@ -177,7 +177,9 @@ class Worker:
         outlets = self.outlets.get(port, [])
         if len(outlets) != 1:
             return None
+        began = time.perf_counter()
         room = outlets[0].lend_room(shape, dtype)
+        self.busy_seconds -= time.perf_counter() - began    # asked from the block's call: waiting is not its work
         if room is not None:
             self.lent_to.append(outlets[0])
         return room
@@ -191,9 +193,13 @@ class Worker:
                     for outlet, picked in zip(outlets, column_major(chunk, outlets)):
                         outlet.send(chunk, picked=picked)
         finally:
-            for outlet in self.lent_to:               # room lent and not sent from
-                outlet.take_back_room()
-            self.lent_to.clear()
+            self.take_back_lent_room()
+
+    def take_back_lent_room(self) -> None:
+        """Room lent to the block for a chunk it did not send (see :meth:`lend_output_room`) goes back."""
+        for outlet in self.lent_to:
+            outlet.take_back_room()
+        self.lent_to.clear()
 
     def wait_for_go(self) -> None:
         """The start barrier: a source produces nothing until every process of the flow has opened its
@@ -215,6 +221,7 @@ class Worker:
         while not self.poll_control():
             produced = self.timed(block.produce)
             if produced is None:
+                self.take_back_lent_room()
                 break
             if self.first_rows_clock is None and produced:
                 self.first_rows_clock = time.monotonic()

@@ -11,6 +11,7 @@ import pytest
 from bandloom.blocks.block import BlockContext
 from bandloom.blocks.dsp import design_bank
 from bandloom.blocks.scenario import Scenario
+from bandloom.runtime import shared_rings
 from bandloom.runtime.plugins import load_registry
 from runner import bandloom, run_flow
 
@@ -219,3 +220,8 @@ def test_benchmark_flows_check_and_run_on_the_noise_their_script_makes(name, tmp
         assert link["received_samples"] in (None, link["sent_samples"])
     rate = 61.44e6 if name == "wide.toml" else 6.4e6
     assert report["links"][0]["sent_samples"] == round(0.05 * rate)     # the reader's 0.05 s, all sent
+    if name == "wide.toml" and shared_rings.SUPPORTED:
+        # the reader reads the file, and the channelizer makes its frames, in room their links lend them
+        # in shared memory: every chunk (the last one's 57,344 samples too) fills at least a batch
+        assert all(link["shared_memory_messages"] == link["sent_messages"] for link in report["links"])
+        assert [link["copied_bytes"] for link in report["links"]] == [0, 0]

@@ -22,11 +22,11 @@ from runner import bandloom, start_flow, wait_for_worker
 REGISTRY = load_registry()
 
 
-def make(type_name, params, tmp_path):
+def make(type_name, params, tmp_path, output_room=None):
     cls = REGISTRY.types[type_name]
     full = {p.name: p.default for p in cls.parameters if not p.required}
     full.update(params)
-    return cls(full, BlockContext("b", tmp_path / "flow.toml", tmp_path))
+    return cls(full, BlockContext("b", tmp_path / "flow.toml", tmp_path, output_room=output_room))
 
 
 def test_a_piped_recording_loses_nothing_on_a_busy_machine(tmp_path, rng, busy_machine):
@@ -53,11 +53,20 @@ def test_a_piped_recording_loses_nothing_on_a_busy_machine(tmp_path, rng, busy_m
     assert report["lost_samples"] == 0
 
 
-def test_a_file_that_shrinks_while_read_is_an_error_after_its_whole_samples(tmp_path):
-    """The whole samples before the new end are delivered; then the reader fails naming the file and the byte."""
+@pytest.mark.parametrize("lent", [False, True])
+def test_a_file_that_shrinks_while_read_is_an_error_after_its_whole_samples(tmp_path, lent):
+    """The whole samples before the new end are delivered; then the reader fails naming the file and the byte.
+    ``lent``: the reader reads into room the runtime lends it (as a link's ring does), and delivers the
+    whole samples as the first part of that room."""
     path = tmp_path / "band.cf32"
     np.ones(100_000, np.complex64).tofile(path)
-    reader = make("iq-reader", {"path": "band.cf32", "sample_rate": 1e6, "chunk_size": 40_000}, tmp_path)
+    rooms = []
+
+    def output_room(port, shape, dtype):
+        rooms.append(np.full(shape, np.nan, dtype))
+        return rooms[-1]
+    reader = make("iq-reader", {"path": "band.cf32", "sample_rate": 1e6, "chunk_size": 40_000}, tmp_path,
+                  output_room if lent else None)
     reader.start({})
     reader.begin()
     first = reader.produce()["samples"][0]
@@ -65,6 +74,11 @@ def test_a_file_that_shrinks_while_read_is_an_error_after_its_whole_samples(tmp_
         handle.truncate(8 * 50_000 + 3)                 # 50 000 whole samples and 3 bytes of the next
     second = reader.produce()["samples"][0]
     assert (first.count, second.first_index, second.count) == (40_000, 40_000, 10_000)
+    assert np.all(first.data == 1) and np.all(second.data == 1)
+    if lent:
+        assert len(rooms) == 2                                         # each chunk the first part of its room
+        assert [c.data.ctypes.data for c in (first, second)] == [r.ctypes.data for r in rooms]
+        assert np.all(np.isnan(rooms[1][10_001:]))     # the rest not written (10 000 got the 3 partial bytes)
     with pytest.raises(BlockError) as caught:
         reader.produce()
     assert str(caught.value) == (f"{path} ended at byte 400003 while 640000 were expected (the file shrank while "

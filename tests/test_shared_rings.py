@@ -266,3 +266,21 @@ def test_the_flow_option_is_checked_like_any_other(tmp_path):
     checked = bandloom("check", path)
     assert checked.returncode != 0
     assert f"{path}:3" in checked.stderr and "shared_memory" in checked.stderr, checked.stderr
+
+
+@pytest.mark.skipif(not shared_rings.SUPPORTED, reason="rings are used on x86-64 only (memory order)")
+def test_a_reader_reads_its_file_straight_into_the_ring(tmp_path):
+    """A cf32 file (300,000 random samples) read into room its link lends it in shared memory and written
+    out again: the copy is byte for byte the file, and the reader's link copied no byte (each chunk, the
+    last one's 37,856 samples too, fills at least a 256 KiB batch)."""
+    data = np.random.default_rng(5).standard_normal(600_000).astype(np.float32)
+    data.tofile(tmp_path / "in.cf32")
+    (tmp_path / "flow.toml").write_text(
+        '[blocks.read]\ntype = "iq-reader"\npath = "in.cf32"\nmetadata = "none"\nsample_rate = 1e6\n\n'
+        '[blocks.write]\ntype = "iq-writer"\npath = "out.cf32"\n\n'
+        '[[links]]\nfrom = "read.samples"\nto = "write.samples"\n')
+    done, report = run_flow(tmp_path / "flow.toml", tmp_path / "out")
+    assert done.returncode == 0 and "verdict: no sample lost" in done.stderr, done.stderr
+    assert (tmp_path / "out" / "out.cf32").read_bytes() == (tmp_path / "in.cf32").read_bytes()
+    (link,) = report["links"]
+    assert link["shared_memory_messages"] == link["sent_messages"] == 5 and link["copied_bytes"] == 0
