@@ -43,7 +43,7 @@ def test_bench_flow_measures_both_lengths_and_what_each_link_carries(tmp_path):
     result = json.loads(done.stdout)
     assert result["short"]["input_samples"] == 4_000_000 and result["long"]["input_samples"] == 16_000_000
     assert result["steady_input_rate"] > 0
-    assert 0 < result["short"]["startup_seconds"] < result["short"]["seconds"]
+    assert 0 < result["short"]["startup_seconds"] < result["short"]["seconds"], result["short"]
     assert result["in_process"]["split"]["rate"] > 0 and result["in_process"]["split"]["ratio"] > 0
     links = {x["link"]: x for x in result["links"]}
     assert links["band.samples -> split.samples"]["bytes_per_input_sample"] == 8
@@ -54,10 +54,10 @@ def test_bench_flow_measures_both_lengths_and_what_each_link_carries(tmp_path):
     # 2,048) waits in a batch and is copied into it: 1,152 x 16 x 8 bytes over 16,000,000 samples.
     wide = links["split.channels -> sink.samples"]
     if shared_rings.SUPPORTED:
-        assert wide["shared_memory_fraction"] == 1.0
-        assert wide["copied_bytes_per_input_sample"] == 1152 * 16 * 8 / 16_000_000
+        assert wide["shared_memory_fraction"] == 1.0, result["links"]
+        assert wide["copied_bytes_per_input_sample"] == 1152 * 16 * 8 / 16_000_000, result["links"]
     busy = {b["block"]: b["busy_fraction"] for b in result["blocks"]}
-    assert 0 < busy["split"] <= 1.0
+    assert 0 < busy["split"] <= 1.0, result["blocks"]
     cpu = {b["block"]: b["cpu_ns_per_input_sample"] for b in result["blocks"]}
     assert cpu["split"] > 0 and cpu["band"] > 0
 
