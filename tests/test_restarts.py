@@ -181,3 +181,53 @@ def test_when_no_restart_is_left_the_run_fails_naming_the_block(tmp_path, busy_m
     assert_links_add_up(report)
     assert "Traceback" not in stderr
 
+
+
+def test_a_killed_writer_of_a_reader_that_reads_into_shared_memory_is_restarted_and_all_is_counted(tmp_path,
+                                                                                                 busy_machine):
+    """iq-reader reads a paced cf32 file straight into room its link lends it in shared memory; the one
+    writer is killed in the middle and restarted. Afterwards: per link sent = received + lost at the restart
+    + in flight; the file keeps absolute time and equals the recording everywhere but in the annotated
+    zero-filled gap, whose length is what the verdict counts lost; the link went through shared memory and
+    copied only the recording's last, short chunk (1,600,000 mod 65,536 = 27,136 samples, less than a
+    256 KiB batch)."""
+    recording = (np.random.default_rng(3).standard_normal((1_600_000, 2)) * 0.1).astype(np.float32)
+    recording.tofile(tmp_path / "band.cf32")
+    flow = tmp_path / "reader.toml"
+    flow.write_text(f"""
+[blocks.read]
+type = "iq-reader"
+path = "band.cf32"
+metadata = "none"
+sample_rate = {RATE}
+pace = true
+
+[blocks.keep]
+type = "iq-writer"
+path = "keep.sigmf-data"
+on_failure = "restart"
+restart_delay = "0.3 s"
+
+[[links]]
+from = "read.samples"
+to = "keep.samples"
+""")
+    out, report_path = tmp_path / "out", tmp_path / "report.json"
+    run = subprocess.Popen([sys.executable, "-m", "bandloom.runtime", "run", str(flow), "--quiet", "--out", str(out),
+                            "--report", str(report_path)], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    kill_when_written("keep", out / "keep.sigmf-data", 8 * 500_000)
+    code, stderr, report = finish(run, report_path)
+
+    assert code == 3, stderr
+    assert report["blocks"]["keep"]["restarts"] == 1
+    assert_links_add_up(report)
+    kept = np.fromfile(out / "keep.sigmf-data", np.complex64)
+    assert len(kept) == 1_600_000
+    in_gap = np.zeros(len(kept), bool)
+    for gap in json.loads((out / "keep.sigmf-meta").read_text())["annotations"]:
+        in_gap[gap["core:sample_start"]:gap["core:sample_start"] + gap["core:sample_count"]] = True
+    assert np.all(kept[in_gap] == 0)
+    np.testing.assert_array_equal(kept[~in_gap], recording.view(np.complex64)[:, 0][~in_gap])
+    assert in_gap.sum() == losses_at(report, "keep") > 0
+    link = link_of(report, "keep")
+    assert link["shared_memory_messages"] > 0 and link["copied_bytes"] == 27_136 * 8
