@@ -344,9 +344,8 @@ class Outlet(_LinkEnd):
                 or not self.batch_rows <= rows <= self.rows_per_message):
             return None
         nbytes = rows * self.stream.width * self.stream.dtype.itemsize
-        if not ring.has_room(nbytes) and ring.should_wait(nbytes):     # as send would wait: the consumer is behind
-            if self.when_full is WhenFull.DROP or not self._wait_for_ring(ring, nbytes):
-                return None
+        if not self._wait_for_ring(ring, nbytes, droppable=self.when_full is WhenFull.DROP):   # as send waits
+            return None
         room = ring.reserve(nbytes)
         if room is None:
             return None
@@ -488,18 +487,22 @@ class Outlet(_LinkEnd):
         if ring.reserved is not None:        # the batch, filled where it lies in the ring
             return [header, b"", ring.commit(data)], True
         nbytes = data.nbytes
-        if not ring.has_room(nbytes) and ring.should_wait(nbytes):
-            if droppable or not self._wait_for_ring(ring, nbytes):
-                return None, False
+        if not self._wait_for_ring(ring, nbytes, droppable=droppable):
+            return None, False
         if ring.has_room(nbytes):
             self.copied_bytes += nbytes
             return [header, b"", ring.place(data)], True
         return [header, data, ring.inline_reference()], False
 
-    def _wait_for_ring(self, ring: RingWriter, nbytes: int) -> bool:
+    def _wait_for_ring(self, ring: RingWriter, nbytes: int, *, droppable: bool) -> bool:
         """Wait until the consumer frees room for ``nbytes`` in the ring (or it need not be waited for);
-        False if the consumer went down meanwhile. Checks after 1 ms, then every 5 ms at most (the consumer
-        is behind: a millisecond more does not delay it, and each check wakes this process)."""
+        False when the message is to be dropped instead: a ``droppable`` one that would have to wait, or
+        the consumer went down meanwhile. Checks after 1 ms, then every 5 ms at most (the consumer is
+        behind: a millisecond more does not delay it, and each check wakes this process)."""
+        if ring.has_room(nbytes) or not ring.should_wait(nbytes):
+            return True
+        if droppable:
+            return False
         started, pause = time.monotonic(), 0.001
         try:
             while not ring.has_room(nbytes) and ring.should_wait(nbytes):
