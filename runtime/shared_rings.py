@@ -54,6 +54,7 @@ predecessor took) frees the ring on the first message it reads.
 
 from __future__ import annotations
 
+import math
 import mmap
 import os
 import platform
@@ -61,6 +62,7 @@ import struct
 import threading
 import weakref
 from collections import deque
+from collections.abc import Mapping
 
 import numpy as np
 
@@ -87,15 +89,33 @@ class RingError(WireError):
     not one; the text says what and why."""
 
 
-def ring_bytes(links: int) -> int:
-    """The data capacity of each ring when ``links`` links of one machine's run have one: an equal share of
-    :data:`TOTAL_RING_BYTES`, within :data:`MIN_RING_BYTES` .. :data:`MAX_RING_BYTES`, in whole pages.
+def ring_bytes(byte_rates: Mapping[int, float]) -> dict[int, int]:
+    """The data capacity of each link's ring, given each link's samples in bytes per second: a share of
+    :data:`TOTAL_RING_BYTES` in proportion to its rate, within :data:`MIN_RING_BYTES` ..
+    :data:`MAX_RING_BYTES`, in whole pages (so the rings hold at most the larger of TOTAL_RING_BYTES and
+    MIN_RING_BYTES per link). A fast link gets the larger ring: its messages are larger and more of them
+    are in flight, so the two processes need not run in step; a 64-channel split's narrow links take
+    the minimum and its input link the maximum (fan-out flow, docs/performance.md). A rate that is not
+    a positive number counts as the mean of the others (equal shares if none is).
 
-    >>> ring_bytes(2) == MAX_RING_BYTES, ring_bytes(16) == 4 << 20, ring_bytes(1000) == MIN_RING_BYTES
-    (True, True, True)
+    >>> sizes = ring_bytes({1: 8.0, 2: 8.0})
+    >>> sizes[1] == sizes[2] == MAX_RING_BYTES
+    True
+    >>> sizes = ring_bytes({0: 51.2e6} | {k: 0.8e6 for k in range(1, 65)})
+    >>> sizes[0] == MAX_RING_BYTES, sizes[1] == MIN_RING_BYTES
+    (True, True)
+    >>> set(ring_bytes({k: float("nan") for k in range(16)}).values()) == {4 << 20}
+    True
     """
-    wanted = min(MAX_RING_BYTES, max(MIN_RING_BYTES, TOTAL_RING_BYTES // max(1, links)))
-    return -(-wanted // mmap.PAGESIZE) * mmap.PAGESIZE
+    known = [rate for rate in byte_rates.values() if math.isfinite(rate) and rate > 0]
+    fill = sum(known) / len(known) if known else 1.0
+    rates = {link: rate if math.isfinite(rate) and rate > 0 else fill for link, rate in byte_rates.items()}
+    total = sum(rates.values())
+    sizes = {}
+    for link, rate in rates.items():
+        wanted = min(MAX_RING_BYTES, max(MIN_RING_BYTES, int(TOTAL_RING_BYTES * (rate / total))))
+        sizes[link] = -(-wanted // mmap.PAGESIZE) * mmap.PAGESIZE
+    return sizes
 
 
 def make_ring(link: int, capacity: int) -> int | None:

@@ -166,12 +166,14 @@ def shared_ring_sizes(flow: Flow, local: Mapping[str, Instance]) -> dict[int, in
     ring's size: every link between two of ``local`` (forked by one launcher) over the run's private
     folder, unless the flow says ``shared_memory = false`` or this processor is not one rings are safe on
     (:data:`.shared_rings.SUPPORTED`). The rings together hold at most
-    :data:`.shared_rings.TOTAL_RING_BYTES`."""
+    :data:`.shared_rings.TOTAL_RING_BYTES`, shared in proportion to each link's bytes per second
+    (see :func:`.shared_rings.ring_bytes`)."""
     if not (flow.shared_memory and SHARED_MEMORY_SUPPORTED):
         return {}
     chosen = [link for link in flow.links
               if link.target is not None and link.endpoint is None and link.source in local and link.target in local]
-    return {link.id: ring_bytes(len(chosen)) for link in chosen}
+    return ring_bytes({link.id: link.stream.sample_rate * link.stream.width * link.stream.dtype.itemsize
+                       for link in chosen})
 
 
 class Supervisor:

@@ -6,6 +6,7 @@ bank and that to scipy (tests/test_banks.py).
 
 Every ring here is a real memory file mapped twice, as the two processes of a link map it."""
 
+import mmap
 import os
 import subprocess
 import sys
@@ -284,3 +285,28 @@ def test_a_reader_reads_its_file_straight_into_the_ring(tmp_path):
     assert (tmp_path / "out" / "out.cf32").read_bytes() == (tmp_path / "in.cf32").read_bytes()
     (link,) = report["links"]
     assert link["shared_memory_messages"] == link["sent_messages"] == 5 and link["copied_bytes"] == 0
+
+
+def test_rings_are_shared_out_in_proportion_to_each_links_bytes_per_second(tmp_path):
+    """The flow above with eight per-channel writers: eleven links, their rates in bytes per second from
+    the flow's streams. The input, the split's link to the synthesis and the band put back together take
+    the largest ring (their shares are above it); each per-channel writer's link (1.6 MB/s, 1/24 of the
+    38.4 MB/s in all) its share of the 64 MiB, about 2.7 MiB, in whole pages."""
+    from bandloom.runtime.flow import load_flow
+    from bandloom.runtime.plugins import load_registry
+    from bandloom.runtime.supervisor import shared_ring_sizes
+    (tmp_path / "flow.toml").write_text(FLOW.format(shared="true", chunk=10000, writers=WRITERS))
+    flow = load_flow(tmp_path / "flow.toml", load_registry(), output_dir=tmp_path)
+    sizes = shared_ring_sizes(flow, flow.instances)
+    by_label = {link.label: sizes[link.id] for link in flow.links}
+    assert len(by_label) == 11
+    wide = [size for label, size in by_label.items() if not label.startswith("split.channels[")]
+    narrow = [size for label, size in by_label.items() if label.startswith("split.channels[")]
+    assert len(narrow) == 8 and len(set(narrow)) == 1, by_label
+    assert wide == [shared_rings.MAX_RING_BYTES] * 3, by_label
+    rates = {link.label: link.stream.sample_rate * link.stream.width * 8 for link in flow.links}
+    share = shared_rings.TOTAL_RING_BYTES * rates[next(iter(k for k in rates if k.startswith("split.channels[")))] \
+        / sum(rates.values())
+    assert shared_rings.MIN_RING_BYTES <= narrow[0] < shared_rings.MAX_RING_BYTES
+    assert narrow[0] == -(-int(share) // mmap.PAGESIZE) * mmap.PAGESIZE, (narrow[0], share)
+    assert all(size % mmap.PAGESIZE == 0 for size in sizes.values())
