@@ -250,7 +250,10 @@ class AnalysisBank:
 
     def reset(self) -> None:
         """Forget all input: the next sample given is absolute sample 0 again."""
-        self._history = np.zeros(len(self._taps) - 1, dtype=np.complex64)
+        # the last L - 1 input samples (the history) at the front, and room after them for as many more:
+        # frames whose window starts before a chunk's first sample read the history and the chunk's head
+        # joined here, and the history is kept here, with no array made for either per chunk
+        self._joined = np.zeros(2 * (len(self._taps) - 1), dtype=np.complex64)
         self._consumed = 0
         self._frames = 0
 
@@ -293,7 +296,9 @@ class AnalysisBank:
         window_start = frame_numbers * D - (L - 1)
         boundary = int(np.searchsorted(window_start, before))
         if boundary:
-            joined = np.concatenate([self._history, x[:min(len(x), int(window_start[boundary - 1]) + L - before)]])
+            head = min(len(x), int(window_start[boundary - 1]) + L - before)
+            joined = self._joined[:L - 1 + head]
+            joined[L - 1:] = x[:head]
             self._fold(joined, window_start[:boundary] - (before - (L - 1)), window_start[:boundary], out[:boundary])
         untransformed = out                          # the frames left for one FFT call at the end
         if boundary < len(frame_numbers):
@@ -312,9 +317,10 @@ class AnalysisBank:
                 untransformed = out[:boundary]
         _fft_rows(untransformed)                     # one call, not two: a scipy.fft call costs about 10 us
         if L > 1:
-            keep = min(len(x), L - 1)
-            self._history = np.concatenate([self._history[keep:], x[len(x) - keep:]]) if keep < L - 1 \
-                else x[len(x) - keep:].copy()
+            history, keep = self._joined[:L - 1], min(len(x), L - 1)
+            if keep < L - 1:
+                history[:L - 1 - keep] = history[keep:].copy()
+            history[L - 1 - keep:] = x[len(x) - keep:]
         if given is not None and out is not given:     # the reference kernel's float64 frames, rounded
             given[...] = out
             return given
@@ -335,7 +341,7 @@ class AnalysisBank:
         frames = self.process(np.zeros(head, dtype=np.complex64))
         rest = count - head
         if rest:
-            self._history[:] = 0
+            self._joined[:] = 0
             self._consumed += rest
             self._frames = -(-self._consumed // self._decimation)
         return frames
