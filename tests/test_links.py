@@ -1,6 +1,7 @@
 """One link's two ends over a real ipc socket: delivery, gaps, end of stream, drops, and their counters."""
 
 import os
+import threading
 import time
 
 import numpy as np
@@ -293,6 +294,26 @@ def test_a_narrow_link_through_shared_memory_fills_its_batch_in_place(ends, rng)
     assert np.array_equal(np.concatenate(got), data)
     assert stats.shared_messages == stats.messages > 1 and stats.copied_bytes == data.nbytes
     assert inlet.ring is not None and inlet.ring.ring_messages == stats.messages
+
+
+def test_a_full_socket_holds_the_sender_back_and_loses_nothing(ends):
+    """A lossless link whose consumer does not read: once its queue (and the kernel's buffer) is full the
+    sender waits, counting the time as blocked, instead of dropping; when the consumer reads, every message
+    arrives in order and the sender finishes with nothing dropped."""
+    outlet, inlet = ends(queue=1)
+    rows, count = (256 << 10) // 8, 64
+    sender = threading.Thread(target=lambda: [outlet.send(Chunk(np.full(rows, n, np.complex64), n * rows))
+                                              for n in range(count)])
+    sender.start()
+    deadline = time.monotonic() + 30
+    while outlet.blocked_seconds < 0.4 and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert sender.is_alive() and outlet.blocked_seconds >= 0.4, "the sender did not wait for the consumer"
+    got = [int(inlet.receive().data[0].real) for _ in range(count)]
+    sender.join(30)
+    assert not sender.is_alive() and got == list(range(count))
+    stats = outlet.stats()
+    assert stats.messages == count and stats.dropped_rows == stats.dropped_messages == 0
 
 
 def test_a_dropping_link_drops_what_its_full_ring_cannot_take_and_says_so(ends):
