@@ -99,7 +99,7 @@ def take_whole_stream(port):
     try:
         return consumer.take_all()
     finally:
-        consumer.sock.close()
+        consumer.sock.close(linger=0)    # a last ack not yet out must not hold term() up
         ctx.term()
 
 
@@ -294,7 +294,7 @@ def test_an_ipv6_endpoint_serves_its_consumer(tmp_path):
     try:
         got, end = consumer.take_all()
     finally:
-        consumer.sock.close()
+        consumer.sock.close(linger=0)    # a last ack not yet out must not hold term() up
         ctx.term()
     stderr, summary = finish(process, report)
     assert process.returncode == 0, stderr
