@@ -75,7 +75,7 @@ HEADER_BYTES = 4096
 SUPPORTED = platform.machine().lower() in ("x86_64", "amd64")     # see the module doc: memory order
 MIN_RING_BYTES = 1 << 20
 MAX_RING_BYTES = 8 << 20
-TOTAL_RING_BYTES = 64 << 20             # the rings of one machine's run, in all (pages are used as written)
+TOTAL_RING_BYTES = 64 << 20             # shared out among one machine's rings (see ring_bytes; pages are used as written)
 REFERENCE_BYTES = 16
 _MAGIC = int.from_bytes(b"bandring", "little")
 _MAGIC_AT, _CAPACITY_AT, _WRITTEN_AT, _RECEIVED_AT, _RELEASED_AT = (8 * n for n in range(5))   # uint64 word indices
@@ -92,8 +92,8 @@ class RingError(WireError):
 def ring_bytes(byte_rates: Mapping[int, float]) -> dict[int, int]:
     """The data capacity of each link's ring, given each link's samples in bytes per second: a share of
     :data:`TOTAL_RING_BYTES` in proportion to its rate, within :data:`MIN_RING_BYTES` ..
-    :data:`MAX_RING_BYTES`, in whole pages (so the rings hold at most the larger of TOTAL_RING_BYTES and
-    MIN_RING_BYTES per link). A fast link gets the larger ring: its messages are larger and more of them
+    :data:`MAX_RING_BYTES`, in whole pages (so the rings hold at most TOTAL_RING_BYTES plus MIN_RING_BYTES
+    a link). A fast link gets the larger ring: its messages are larger and more of them
     are in flight, so the two processes need not run in step; a 64-channel split's narrow links take
     the minimum and its input link the maximum (fan-out flow, docs/performance.md). A rate that is not
     a positive number counts as the mean of the others (equal shares if none is).

@@ -165,9 +165,8 @@ def shared_ring_sizes(flow: Flow, local: Mapping[str, Instance]) -> dict[int, in
     """The links of this machine's blocks that pass their samples through shared memory, each with its
     ring's size: every link between two of ``local`` (forked by one launcher) over the run's private
     folder, unless the flow says ``shared_memory = false`` or this processor is not one rings are safe on
-    (:data:`.shared_rings.SUPPORTED`). The rings together hold at most
-    :data:`.shared_rings.TOTAL_RING_BYTES`, shared in proportion to each link's bytes per second
-    (see :func:`.shared_rings.ring_bytes`)."""
+    (:data:`.shared_rings.SUPPORTED`). :data:`.shared_rings.TOTAL_RING_BYTES` is shared out in proportion
+    to each link's bytes per second, 1-8 MiB a ring (see :func:`.shared_rings.ring_bytes`)."""
     if not (flow.shared_memory and SHARED_MEMORY_SUPPORTED):
         return {}
     chosen = [link for link in flow.links
