@@ -431,7 +431,7 @@ class SynthesisBank:
         self._shares.run(len(out), max(1, L // D),
                          lambda a, b: self._kernel.spread_frames(periodic, self._prepared, D, M, phase, out, a, b))
         self._frames += count
-        self._pending = out[count * D:].copy()
+        self._pending = out[count * D:]             # a view: what the caller gets ends before it
         return out[:count * D].astype(np.complex64, copy=False)
 
     def skip(self, count: int) -> np.ndarray:
