@@ -110,6 +110,16 @@ class StreamInfo:
     def dtype(self) -> np.dtype:
         return SAMPLE_TYPES[self.sample_type]
 
+    @property
+    def row_bytes(self) -> int:
+        """Bytes of one row of a chunk (one sample of every column)."""
+        return self.width * self.dtype.itemsize
+
+    @property
+    def bytes_per_second(self) -> float:
+        """What the stream carries at its sample rate, in bytes per second."""
+        return self.sample_rate * self.row_bytes
+
     def select(self, columns: list[int]) -> StreamInfo:
         """The stream carrying only ``columns`` (positions in ``channels``); one column gives samples."""
         if self.kind != "channels":

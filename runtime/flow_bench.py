@@ -202,8 +202,8 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
     processes = len(first_of_process)
     links = []
     for link, counted in zip(flow.links, long.summary["links"]):
-        row_bytes = link.stream.width * link.stream.dtype.itemsize
-        links.append({"link": counted["link"], "bytes_per_input_sample": counted["sent_samples"] * row_bytes / per_sample,
+        links.append({"link": counted["link"],
+                      "bytes_per_input_sample": counted["sent_samples"] * link.stream.row_bytes / per_sample,
                       "copied_bytes_per_input_sample": counted["copied_bytes"] / per_sample,
                       "messages": counted["sent_messages"],
                       "shared_memory_fraction": (counted.get("shared_memory_messages", 0)

@@ -121,7 +121,7 @@ def describe_hosts(flow: Flow) -> list[str]:
     total = 0.0
     for link in crossing:
         stream = link.stream
-        rate = stream.sample_rate * stream.dtype.itemsize * stream.width
+        rate = stream.bytes_per_second
         total += rate
         source, target = flow.instances[link.source].host, flow.instances[link.target or ""].host
         lines.append(f"  {link.label}: {source} -> {target} on port {flow.link_port(link)}, "

@@ -272,7 +272,7 @@ class Outlet(_LinkEnd):
         message_bytes = min(MESSAGE_BYTES, QUEUE_BYTES // max(1, spec.queue))
         if self.ring is not None:          # messages a quarter of the ring at most: four can be in flight
             message_bytes = min(message_bytes, self.ring.capacity // 4)
-        row_bytes = self.stream.width * self.stream.dtype.itemsize
+        row_bytes = self.stream.row_bytes
         self.rows_per_message = max(1, message_bytes // row_bytes)
         self.batch_seconds = spec.batch_seconds
         self.batch_rows = max(1, min(self.rows_per_message, BATCH_BYTES // row_bytes)) if spec.batch_seconds else 1
@@ -343,7 +343,7 @@ class Outlet(_LinkEnd):
                 or not self.attached or np.dtype(dtype) != self.stream.dtype or tuple(shape[1:]) != row_shape
                 or not self.batch_rows <= rows <= self.rows_per_message):
             return None
-        nbytes = rows * self.stream.width * self.stream.dtype.itemsize
+        nbytes = rows * self.stream.row_bytes
         if not self._wait_for_ring(ring, nbytes, droppable=self.when_full is WhenFull.DROP):   # as send waits
             return None
         room = ring.reserve(nbytes)
@@ -421,7 +421,7 @@ class Outlet(_LinkEnd):
         it was filled, with no copy more), else in this process's memory."""
         shape = (self.batch_rows,) + row_shape
         if self.ring is not None:
-            room = self.ring.reserve(self.batch_rows * self.stream.width * self.stream.dtype.itemsize)
+            room = self.ring.reserve(self.batch_rows * self.stream.row_bytes)
             if room is not None:
                 return room.view(self.stream.dtype).reshape(shape)
         return np.empty(shape, dtype=self.stream.dtype)

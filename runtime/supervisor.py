@@ -171,8 +171,7 @@ def shared_ring_sizes(flow: Flow, local: Mapping[str, Instance]) -> dict[int, in
         return {}
     chosen = [link for link in flow.links
               if link.target is not None and link.endpoint is None and link.source in local and link.target in local]
-    return ring_bytes({link.id: link.stream.sample_rate * link.stream.width * link.stream.dtype.itemsize
-                       for link in chosen})
+    return ring_bytes({link.id: link.stream.bytes_per_second for link in chosen})
 
 
 class Supervisor:

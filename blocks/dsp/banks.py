@@ -319,7 +319,7 @@ class AnalysisBank:
         if L > 1:
             history, keep = self._joined[:L - 1], min(len(x), L - 1)
             if keep < L - 1:
-                history[:L - 1 - keep] = history[keep:].copy()
+                history[:L - 1 - keep] = history[keep:]     # numpy copies overlapping memory correctly
             history[L - 1 - keep:] = x[len(x) - keep:]
         if given is not None and out is not given:     # the reference kernel's float64 frames, rounded
             given[...] = out
