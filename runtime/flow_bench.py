@@ -13,7 +13,9 @@ Method (docs/performance.md):
 * The *baseline* is the flow's channelizer (each one fed straight by a
   source) run in this process on the same data (the short run's): the source
   block is run here too, untimed, and only the channelizer block's own work on
-  each chunk is timed; the fastest of ``runs`` passes (at least two) counts.
+  each chunk is timed. One pass follows every run of the flow (so at least
+  two), and the fastest pass counts: the baseline is taken across the same
+  minutes as the flow, not in one moment a busy or quiet machine would tilt.
   The ratio is the flow's steady input rate over that in-process rate.
 * Per block, its *busy* fraction: time inside its own code (produce, consume,
   finish) over the time from its first samples to its end, and its process's
@@ -142,7 +144,9 @@ def measure_flow(flow: Flow, sets: list[str], *, out_dir: Path) -> FlowRun:
     return FlowRun(input_samples, seconds, startup, summary)
 
 
-def _best(flow: Flow, sets: list[str], runs: int, progress: Callable[[str], None] | None, label: str) -> FlowRun:
+def _best(flow: Flow, sets: list[str], runs: int, progress: Callable[[str], None] | None, label: str, *,
+          after_each: Callable[[], None]) -> FlowRun:
+    """The fastest of ``runs`` runs of the flow; ``after_each`` is called after every run."""
     best: FlowRun | None = None
     for i in range(runs):
         if progress:
@@ -151,6 +155,7 @@ def _best(flow: Flow, sets: list[str], runs: int, progress: Callable[[str], None
             run = measure_flow(flow, sets, out_dir=Path(folder))
         if best is None or run.seconds < best.seconds:
             best = run
+        after_each()
     assert best is not None
     return best
 
@@ -164,9 +169,21 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         for problem in errors.problems:
             print(str(problem), file=sys.stderr)
         return 1
+    channelizers = [inst for inst in flow.instances.values() if inst.type_name == CHANNELIZER
+                    and (feeder := inst.inputs.get("samples")) is not None
+                    and flow.instances[feeder.source].cls.is_source]
+    passes: dict[str, list[float]] = {inst.name: [] for inst in channelizers}
+
+    def measure_baselines() -> None:      # one pass each after every run of the flow (see the module doc)
+        for inst in channelizers:
+            if progress:
+                progress(f"bench --flow: {inst.name} in process")
+            with tempfile.TemporaryDirectory(prefix="bandloom-bench-") as folder:
+                passes[inst.name].append(in_process_rate(flow, inst, Path(folder)))
     try:
-        short = _best(flow, base_sets, args.runs, progress, "short")
-        long = _best(flow, base_sets + _length_overrides(flow, args.lengthen), args.runs, progress, "long")
+        short = _best(flow, base_sets, args.runs, progress, "short", after_each=measure_baselines)
+        long = _best(flow, base_sets + _length_overrides(flow, args.lengthen), args.runs, progress, "long",
+                     after_each=measure_baselines)
     except FlowRunFailed as failure:
         if progress:
             progress("")
@@ -177,15 +194,9 @@ def run_flow_bench(args: Namespace, out: TextIO, progress: Callable[[str], None]
         raise ValueError(f"the long run took {long.seconds:.2f} s, no longer than the short one ({short.seconds:.2f} s): "
                          f"start-up hides the flow's rate; make the flow longer (its sources' length, or --lengthen)")
     steady = extra / (long.seconds - short.seconds)
-    baselines = {}
-    for inst in flow.instances.values():
-        feeder = inst.inputs.get("samples")
-        if inst.type_name == CHANNELIZER and feeder is not None and flow.instances[feeder.source].cls.is_source:
-            if progress:
-                progress(f"bench --flow: {inst.name} in process")
-            with tempfile.TemporaryDirectory(prefix="bandloom-bench-") as folder:
-                # at least two passes: one pass right after the kernels' source changed was once measured 25x slow
-                baselines[inst.name] = max(in_process_rate(flow, inst, Path(folder)) for _ in range(max(2, args.runs)))
+    # at least two passes (one after each length's runs): one pass right after the kernels' source changed
+    # was once measured 25x slow
+    baselines = {name: max(rates) for name, rates in passes.items()}
     if progress:
         progress("")
     per_sample = max(1, long.input_samples)
