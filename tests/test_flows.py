@@ -195,7 +195,7 @@ def test_main_demo_audio_has_no_click_and_no_clipping(runs):
         assert sounding[0] == pytest.approx(on, abs=0.01) and sounding[-1] == pytest.approx(off, abs=0.01)
 
 
-@pytest.mark.parametrize("name", ["wide.toml", "fan-out.toml"])
+@pytest.mark.parametrize("name", ["wide.toml", "fan-out.toml", "fan-out-discard.toml"])
 def test_benchmark_flows_check_and_run_on_the_noise_their_script_makes(name, tmp_path):
     """flows/bench (docs/performance.md's flows): from a copy, make-noise.py writes the 8 Mi-sample input,
     the flow passes check, and a short run of it finishes with every sample delivered."""
