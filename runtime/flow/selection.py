@@ -63,7 +63,11 @@ def _number(n: int, stream: StreamInfo, available: str) -> int:
 
 
 def _frequency_range(item: str, stream: StreamInfo) -> list[int]:
-    low_text, high_text = item.split("..")
+    ends = item.split("..")
+    if len(ends) != 2:
+        raise SelectionError(f"expected a range of two ends \"A..B\", such as \"2..7\" or \"156.0 MHz..156.4 "
+                             f"MHz\", got {toml_repr(item)} ({len(ends)} ends)")
+    low_text, high_text = ends
     try:
         low, high = parse_quantity(low_text, "Hz"), parse_quantity(high_text, "Hz")
     except UnitError:
