@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import math
 import re
+import stat
 from pathlib import Path
 from typing import IO, Any
 
@@ -174,10 +175,14 @@ class IQReader(Block):
         path = self.context.input_path(self.params["path"])
         fmt, order, rate, centre, when = self._settings()
         try:
-            size = path.stat().st_size
+            info = path.stat()
         except OSError as error:
             relative = "" if Path(self.params["path"]).is_absolute() else " (paths are relative to the flow file's folder)"
             raise BlockError(f"cannot read {path}: {error.strerror}{relative}", param="path") from None
+        if not stat.S_ISREG(info.st_mode):
+            what = "a folder" if stat.S_ISDIR(info.st_mode) else "not a regular file (a device, pipe or socket)"
+            raise BlockError(f"{path} is {what}; give the path of a recording", param="path")
+        size = info.st_size
         sample_bytes = FORMATS[fmt].bytes_per_sample
         tail = size % sample_bytes
         if tail and self.params["trailing_bytes"] == "error":

@@ -20,7 +20,8 @@ from typing import Any
 
 from .units import UnitError, parse_quantity
 
-__all__ = ["KINDS", "Kind", "MAX_CHANNELS", "Param", "REQUIRED", "UNIT_BOUNDS", "shortened", "toml_repr"]
+__all__ = ["KINDS", "Kind", "MAX_CHANNELS", "Param", "REQUIRED", "UNIT_BOUNDS", "path_problem", "shortened",
+           "toml_repr"]
 
 #: Bounds a quantity takes from its unit when its declaration gives none: finite, and wide enough for
 #: anything physical (frequencies to 3 THz, the top of the radio spectrum as the ITU Radio Regulations
@@ -122,6 +123,39 @@ def _to_text(param: Param, value: Any) -> str:
     return value
 
 
+#: The longest path and the longest name in it that Linux accepts, in bytes (PATH_MAX and NAME_MAX of
+#: <linux/limits.h>, 4096 with its closing NUL, and 255): longer ones fail in the OS with ENAMETOOLONG.
+MAX_PATH_BYTES, MAX_NAME_BYTES = 4095, 255
+
+
+def path_problem(text: str) -> str | None:
+    """What makes ``text`` unusable as a path on any file system here, or None: a NUL character, or more
+    bytes (UTF-8) than the OS takes in a path or in one of its names.
+
+    >>> path_problem("a/b.cf32") is None, path_problem("a\\x00b"), path_problem("x" * 300)
+    (True, 'a path cannot hold a NUL character', 'a name in a path is at most 255 bytes; one here is 300')
+    """
+    if "\x00" in text:
+        return "a path cannot hold a NUL character"
+    encoded = text.encode("utf-8", "surrogateescape")
+    if len(encoded) > MAX_PATH_BYTES:
+        return f"a path is at most {MAX_PATH_BYTES} bytes; this one is {len(encoded)}"
+    longest = max(len(part) for part in encoded.split(b"/"))
+    if longest > MAX_NAME_BYTES:
+        return f"a name in a path is at most {MAX_NAME_BYTES} bytes; one here is {longest}"
+    return None
+
+
+def _to_path(param: Param, value: Any) -> str:
+    text = _to_text(param, value)
+    problem = path_problem(text)
+    if problem:
+        raise ValueError(f"{problem}: got {toml_repr(text)}")
+    if param.kind == "input-path" and text.rstrip("/").rsplit("/", 1)[-1] in ("", ".", ".."):
+        raise ValueError(f"expected the path of a file, got {toml_repr(text)}, which names a folder")
+    return text
+
+
 def _to_choice(param: Param, value: Any) -> Any:
     if value not in param.choices:
         if param.rule:
@@ -153,8 +187,8 @@ KINDS: dict[str, Kind] = {kind.name: kind for kind in (
     Kind("quantity", lambda p: f"number in {p.unit}", _to_quantity),
     Kind("bool", _words("true or false"), _to_bool),
     Kind("str", _words("text"), _to_text),
-    Kind("input-path", _words("path of an existing file"), _to_text),
-    Kind("output-path", _words("path of a file to write"), _to_text),
+    Kind("input-path", _words("path of an existing file"), _to_path),
+    Kind("output-path", _words("path of a file to write"), _to_path),
     Kind("choice", lambda p: "one of " + ", ".join(toml_repr(c) for c in p.choices), _to_choice),
     Kind("list", _words("list"), _to_list),
     Kind("channels", _words("channel selection"), _as_is),

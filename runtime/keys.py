@@ -15,7 +15,10 @@ from __future__ import annotations
 import os
 import shutil
 import stat
+from collections.abc import Callable
 from pathlib import Path
+
+from bandloom.blocks.params import path_problem, shortened
 
 __all__ = ["KeyFolderError", "client_folder_problem", "key_folder_problem", "load_server_keys", "make_key_folder"]
 
@@ -57,11 +60,26 @@ def _open_to_others(path: Path) -> str | None:
     return None
 
 
+def _unreadable(folder: str | Path, check: Callable[[Path], str | None]) -> str | None:
+    """``check(folder)``, or what stops the folder being looked at (a path the OS refuses, a folder this
+    user may not enter) as a problem naming it, instead of the OS error."""
+    problem = path_problem(str(folder))
+    if problem:
+        return f"{shortened(str(folder))}: {problem}"
+    try:
+        return check(Path(folder))
+    except OSError as error:
+        return f"{shortened(str(error.filename or folder))} cannot be read: {error.strerror or error}"
+
+
 def key_folder_problem(folder: str | Path) -> str | None:
     """What is wrong with a key folder, or None: files missing, not key files, or open to other users."""
+    return _unreadable(folder, _key_folder_problem)
+
+
+def _key_folder_problem(folder: Path) -> str | None:
     import zmq.auth
 
-    folder = Path(folder)
     secret = folder / "server.key_secret"
     if not secret.is_file():
         return f"{secret} is missing; make the folder with 'bandloom keys FOLDER'"
@@ -101,9 +119,12 @@ def load_server_keys(folder: str | Path) -> tuple[bytes, bytes]:
 def client_folder_problem(folder: str | Path) -> str | None:
     """What is wrong with the keys a consumer connects with, or None: ``client.key_secret`` (its own key
     pair, secret, not open to other users) and ``server.key`` (the endpoint's public key), both loadable."""
+    return _unreadable(folder, _client_folder_problem)
+
+
+def _client_folder_problem(folder: Path) -> str | None:
     import zmq.auth
 
-    folder = Path(folder)
     secret, server = folder / "client.key_secret", folder / "server.key"
     for path in (secret, server):
         if not path.is_file():

@@ -124,8 +124,8 @@ def test_check_never_raises_hangs_or_allocates_beyond_a_bound(tmp_path, position
 
 
 FLOWS = Path(__file__).parent.parent / "flows"
-HOSTILE_VALUES = ["../../../etc/passwd", float("nan"), float("inf"), -1, 2**63, [[[[1]]]], {"a": {"b": {}}},
-                  "{0.__class__}"]
+HOSTILE_VALUES = ["../../../etc/passwd", "/", "a\x00b", "x" * 300, float("nan"), float("inf"), -1, 2**63,
+                  [[[[1]]]], {"a": {"b": {}}}, "{0.__class__}"]
 
 
 def _value_positions(value, prefix=()):
@@ -139,11 +139,12 @@ def _value_positions(value, prefix=()):
 @pytest.mark.parametrize("flow", sorted(FLOWS.glob("*.toml")) + sorted((FLOWS / "bench").glob("*.toml")),
                          ids=lambda p: p.name)
 def test_every_value_of_every_example_flow_replaced_by_a_hostile_one_is_refused_cleanly(flow, tmp_path):
-    """Each value (and table) of each shipped flow replaced in turn by each of eight hostile values (a path
-    out of the folder, non-finite and huge numbers, deep nesting, a placeholder reaching into Python): the
-    check gives a Flow or FlowErrors, nothing else. The byte-level mutations above rarely make a value of
-    the right shape in the right place; this sweep found a selection written as a path raising a bare
-    unpacking error."""
+    """Each value (and table) of each shipped flow replaced in turn by each of eleven hostile values (a path
+    out of the folder, the root folder, a NUL character, a name longer than file systems take, non-finite
+    and huge numbers, deep nesting, a placeholder reaching into Python): the check gives a Flow or
+    FlowErrors, nothing else. The byte-level mutations above rarely make a value of the right shape in the
+    right place; this sweep found a selection written as a path raising a bare unpacking error, and a
+    reader's path of "/" or with a NUL, and an over-long key folder name, raising the OS's errors."""
     import copy
     import tomllib
     base = tomllib.loads(flow.read_text())

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from bandloom.blocks.block import Block, Param, toml_repr
-from bandloom.blocks.params import shortened
+from bandloom.blocks.params import path_problem, shortened
 
 from ..keys import key_folder_problem
 from ..plugins import RESERVED_KEYS, Registry
@@ -101,6 +101,17 @@ LINK_OPTIONS: tuple[Param, ...] = (
 LINK_ENDS = ("from", "to", "endpoint", "select")
 LINK_KEYS = LINK_ENDS + tuple(p.name for p in LINK_OPTIONS)
 
+
+
+def _no_file(path: Path) -> bool:
+    """True when ``path`` is one the OS takes and nothing is there (a path it refuses, or one this user
+    cannot look at, is for the key-folder check to report)."""
+    if path_problem(str(path)):
+        return False
+    try:
+        return not path.is_file()
+    except OSError:
+        return False
 
 @dataclass(frozen=True, kw_only=True)
 class Declaration:
@@ -394,10 +405,10 @@ class _TableReader:
 
     def keys_folder(self, at: KeyPath, param: Param, keys: str, endpoint: str | None) -> tuple[bool, str | None]:
         folder = self.flow_dir / keys
-        if not (folder / "server.key_secret").is_file():
+        problem = key_folder_problem(folder)
+        if problem and _no_file(folder / "server.key_secret"):
             self.log.add(at + ("keys",), f"expected {param.rule}, got {toml_repr(keys)}")
             return False, None
-        problem = key_folder_problem(folder)
         if problem:
             self.log.add(at + ("keys",), problem)
             return False, None
