@@ -90,15 +90,18 @@ def read_sigmf(meta_path: Path) -> tuple[str, str, Any, Any, Any]:
 
 
 def _number_in(value: object, low: float, high: float) -> bool:
-    return (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
-            and low <= value <= high)
+    """A JSON number within [low, high]: a finite float, or an int of any size (compared exactly, never
+    made a float, which would overflow for a huge one)."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return False
+    return (isinstance(value, int) or math.isfinite(value)) and low <= value <= high
 
 
 def _json_text(value: object) -> str:
     """A JSON value as a message shows it: containers summarised, text shortened, absence said."""
     if isinstance(value, (list, dict)):
         return f"a JSON {'array' if isinstance(value, list) else 'object'} of {len(value)} items"
-    return "nothing" if value is None else toml_repr(value)
+    return "nothing" if value is None else shortened(toml_repr(value))
 
 
 def write_sigmf(data_path: Path, *, datatype: str, sample_rate: float, frequency: float, start_time: str | None,

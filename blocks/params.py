@@ -66,10 +66,10 @@ def toml_repr(value: object) -> str:
         value = shortened(value)
         return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
     if isinstance(value, list):
-        return "[" + ", ".join(toml_repr(v) for v in value) + "]"
+        return shortened("[" + ", ".join(toml_repr(v) for v in value) + "]")
     if isinstance(value, dict):
-        return "{ " + ", ".join(f"{k} = {toml_repr(v)}" for k, v in value.items()) + " }"
-    return repr(value)
+        return shortened("{ " + ", ".join(f"{k} = {toml_repr(v)}" for k, v in value.items()) + " }")
+    return shortened(repr(value))
 
 
 @dataclass(frozen=True)
@@ -100,7 +100,10 @@ def _to_int(param: Param, value: Any) -> int:
 def _to_float(param: Param, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise _expected(param, "a number", value)
-    return float(value)
+    try:
+        return float(value)
+    except OverflowError:                 # an int beyond any float: no parameter takes one
+        raise _expected(param, "a finite number", value) from None
 
 
 def _to_quantity(param: Param, value: Any) -> float:
@@ -250,7 +253,7 @@ class Param:
         given = value
         value = KINDS[self.kind].convert(self, value)
         number = isinstance(value, (int, float)) and not isinstance(value, bool)
-        if number and not math.isfinite(value):
+        if number and isinstance(value, float) and not math.isfinite(value):      # (ints are finite: bounds follow)
             raise _expected(self, "a finite number", given)
         if number and self.minimum is not None and value < self.minimum:
             raise _expected(self, f"at least {_bound(self.minimum)}", given)

@@ -35,6 +35,8 @@ def parse_quantity(value: object, unit: str) -> float:
     family = UNIT_FAMILIES[unit]
     if isinstance(value, bool):
         raise UnitError(f"expected a number in {unit}, got {'true' if value else 'false'}")
+    if isinstance(value, int) and abs(value) > 1e300:     # float() of it would overflow: no quantity is near
+        raise UnitError(f"expected a finite number in {unit}, got a number of {len(str(abs(value)))} digits")
     if isinstance(value, (int, float)):
         return _finite(float(value), value, unit)
     if not isinstance(value, str):

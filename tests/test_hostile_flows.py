@@ -124,7 +124,7 @@ def test_check_never_raises_hangs_or_allocates_beyond_a_bound(tmp_path, position
 
 
 FLOWS = Path(__file__).parent.parent / "flows"
-HOSTILE_VALUES = ["../../../etc/passwd", "/", "a\x00b", "x" * 300, float("nan"), float("inf"), -1, 2**63,
+HOSTILE_VALUES = ["../../../etc/passwd", "/", "a\x00b", "x" * 300, float("nan"), float("inf"), -1, 2**63, 10**400,
                   [[[[1]]]], {"a": {"b": {}}}, "{0.__class__}"]
 
 
@@ -139,12 +139,13 @@ def _value_positions(value, prefix=()):
 @pytest.mark.parametrize("flow", sorted(FLOWS.glob("*.toml")) + sorted((FLOWS / "bench").glob("*.toml")),
                          ids=lambda p: p.name)
 def test_every_value_of_every_example_flow_replaced_by_a_hostile_one_is_refused_cleanly(flow, tmp_path):
-    """Each value (and table) of each shipped flow replaced in turn by each of eleven hostile values (a path
+    """Each value (and table) of each shipped flow replaced in turn by each of twelve hostile values (a path
     out of the folder, the root folder, a NUL character, a name longer than file systems take, non-finite
-    and huge numbers, deep nesting, a placeholder reaching into Python): the check gives a Flow or
-    FlowErrors, nothing else. The byte-level mutations above rarely make a value of the right shape in the
-    right place; this sweep found a selection written as a path raising a bare unpacking error, and a
-    reader's path of "/" or with a NUL, and an over-long key folder name, raising the OS's errors."""
+    and huge numbers, a 401-digit integer as a mapping made in code or a --set may give, deep nesting, a
+    placeholder reaching into Python): the check gives a Flow or FlowErrors, nothing else. The byte-level
+    mutations above rarely make a value of the right shape in the right place; this sweep found a
+    selection written as a path raising a bare unpacking error, a reader's path of "/" or with a NUL and
+    an over-long key folder name raising the OS's errors, and huge integers overflowing float()."""
     import copy
     import tomllib
     base = tomllib.loads(flow.read_text())
@@ -160,7 +161,7 @@ def test_every_value_of_every_example_flow_replaced_by_a_hostile_one_is_refused_
             except FlowErrors as errors:
                 assert all("\x1b" not in str(p) for p in errors.problems)
             except Exception as error:     # noqa: BLE001 - what the test is for
-                pytest.fail(f"{flow.name}: {'.'.join(map(str, position))} = {hostile!r}: "
+                pytest.fail(f"{flow.name}: {'.'.join(map(str, position))} = {repr(hostile)[:80]}: "
                             f"{type(error).__name__}: {error}")
 
 
@@ -184,6 +185,8 @@ METADATA_FLOW = ('[blocks.src]\ntype = "iq-reader"\npath = "rec.sigmf-data"\n[bl
     ('{"global": {"core:datatype": "cf32_le", "core:sample_rate": 1e6}, "captures": [{"core:frequency": 1e999}]}',
      "captures[0].core:frequency: expected a frequency in Hz, a finite number, got inf"),
     ('{"global": [1, 2]}', "global: expected an object, got a JSON array of 2 items"),
+    ('{"global": {"core:datatype": "cf32_le", "core:sample_rate": 1' + "0" * 400 + '}}',
+     "global.core:sample_rate: expected a sample rate in Hz, a finite number above 0, got 1000"),
     ('{"global": ' + "[" * 100_000 + "]" * 100_000 + "}", "not JSON (nested too deeply)"),
     ("[]", "(top level): expected a JSON object"),
 ])

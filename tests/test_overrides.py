@@ -65,3 +65,14 @@ def test_an_override_without_a_key_is_a_usage_error(tmp_path):
     assert done.returncode == 2
     assert "expected BLOCK.KEY=VALUE (for example --set 'rx.sample_rate=10 MHz')" in done.stderr
     assert "Traceback" not in done.stderr
+
+
+def test_an_override_with_a_huge_number_gets_the_flow_files_limit_not_a_traceback(tmp_path):
+    """A 400-digit number given with --set (a flow file refuses it by its text; a --set value reached the
+    parameter checks and overflowed converting it to a float): exit 2, the override and the limit named."""
+    flow, _ = setup(tmp_path)
+    for value in ("1" + "0" * 400, "[" * 100 + "]" * 100):
+        done = bandloom("check", flow, "--set", f"rx.sample_rate={value}", cwd=tmp_path)
+        assert done.returncode == 2, done.stderr
+        assert "Traceback" not in done.stderr
+        assert "a number of more than 64 digits" in done.stderr or "nested more than" in done.stderr

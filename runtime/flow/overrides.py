@@ -18,6 +18,7 @@ from typing import Any
 
 from ..plugins import Registry
 from .problems import FlowErrors, Problem, printable
+from .text_checks import check_text
 
 __all__ = ["Override", "apply_overrides", "attribute_to_overrides", "parse_override"]
 
@@ -48,6 +49,9 @@ def parse_override(text: str) -> Override:
     if not name or not key or "." in key:
         raise ValueError(f"--set {shown}: expected BLOCK.KEY=VALUE with one block name and one key")
     raw = raw.strip()
+    lexical = check_text("--set", f"value = {raw}")       # the flow file's own limits: digits, nesting
+    if lexical:
+        raise ValueError(f"--set {shown}: {lexical[0].message}")
     try:
         value = tomllib.loads(f"value = {raw}")["value"] if raw else ""
     except (tomllib.TOMLDecodeError, RecursionError, ValueError):
