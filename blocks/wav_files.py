@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import warnings
 import wave
 from pathlib import Path
 from typing import Any
@@ -10,6 +11,7 @@ from typing import Any
 import numpy as np
 
 from .block import Block, BlockContext, BlockError, Chunk, Loss, Output, Param, Port, StreamInfo
+from .params import shortened
 from .sample_formats import FORMATS
 from .units import format_frequency
 
@@ -34,9 +36,18 @@ class WavReader(Block):
         import scipy.io.wavfile
         path = self.context.input_path(self.params["path"])
         try:
-            rate, data = scipy.io.wavfile.read(path, mmap=True)
-        except (OSError, ValueError) as error:
-            raise BlockError(f"cannot read {path} as WAV: {error}", param="path") from None
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                rate, data = scipy.io.wavfile.read(path, mmap=True)
+        except OSError as error:
+            raise BlockError(f"cannot read {path}: {error.strerror or error}", param="path") from None
+        except Exception as error:  # scipy's parser raises many kinds for a damaged file (struct.error, ZeroDivisionError, ...)
+            reason = shortened(str(error)) or type(error).__name__
+            raise BlockError(f"cannot read {path} as WAV ({reason}): not a WAV file, or a damaged one",
+                             param="path") from None
+        for warning in caught:                   # samples missing that the header promised: refused, not cut quietly
+            if "prematurely" in str(warning.message):
+                raise BlockError(f"{path} is cut short: {shortened(str(warning.message), 160)}", param="path")
         if data.ndim != 2 or data.shape[1] != 2:
             channels = 1 if data.ndim == 1 else data.shape[1]
             raise BlockError(f"{path} has {channels} channel{'s' if channels != 1 else ''}; IQ needs exactly 2 "
