@@ -102,7 +102,6 @@ LINK_ENDS = ("from", "to", "endpoint", "select")
 LINK_KEYS = LINK_ENDS + tuple(p.name for p in LINK_OPTIONS)
 
 
-
 def _no_file(path: Path) -> bool:
     """True when ``path`` is one the OS takes and nothing is there (a path it refuses, or one this user
     cannot look at, is for the key-folder check to report)."""
@@ -112,6 +111,7 @@ def _no_file(path: Path) -> bool:
         return not path.is_file()
     except OSError:
         return False
+
 
 @dataclass(frozen=True, kw_only=True)
 class Declaration:
