@@ -13,6 +13,7 @@ Ratios, not seconds, are the figures to compare between machines.
 from __future__ import annotations
 
 import json
+import sys
 import time
 from argparse import ArgumentParser, ArgumentTypeError, Namespace
 from collections.abc import Callable
@@ -38,17 +39,26 @@ def _whole_number(low: int, high: int) -> Callable[[str], int]:
     return convert
 
 
-def _int_list(text: str) -> list[int]:
-    return [int(v) for v in text.split(",") if v.strip()]
+def _whole_numbers(low: int, high: int) -> Callable[[str], list[int]]:
+    """A comma list of whole numbers, each from ``low`` to ``high``."""
+    one = _whole_number(low, high)
+
+    def convert(text: str) -> list[int]:
+        values = [one(v.strip()) for v in text.split(",") if v.strip()]
+        if not values:
+            raise ArgumentTypeError(f"{text!r} lists no number")
+        return values
+    return convert
 
 
 def add_arguments(parser: ArgumentParser) -> None:
-    parser.add_argument("--channels", type=_int_list, default=[64, 1024, 4096], help="comma list of M")
-    parser.add_argument("--taps-per-branch", type=_int_list, default=[4, 8, 16], help="comma list of R")
-    parser.add_argument("--oversample", type=_int_list, default=[1, 2], help="comma list of M/D")
-    parser.add_argument("--samples", type=int, default=1 << 21, help="input samples per case")
-    parser.add_argument("--chunk", type=int, default=1 << 16, help="samples per process() call")
-    parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
+    parser.add_argument("--channels", type=_whole_numbers(2, 1 << 16), default=[64, 1024, 4096],
+                        help="comma list of M")
+    parser.add_argument("--taps-per-branch", type=_whole_numbers(1, 256), default=[4, 8, 16], help="comma list of R")
+    parser.add_argument("--oversample", type=_whole_numbers(1, 1 << 16), default=[1, 2], help="comma list of M/D")
+    parser.add_argument("--samples", type=_whole_number(1, 1 << 30), default=1 << 21, help="input samples per case")
+    parser.add_argument("--chunk", type=_whole_number(1, 1 << 26), default=1 << 16, help="samples per process() call")
+    parser.add_argument("--repeats", type=_whole_number(1, 1000), default=5, help="best of this many runs")
     parser.add_argument("--threads", type=_whole_number(1, 64), default=1, help="also time both banks with this many threads "
                         "against one (they pay off with --chunk 262144 or more)")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
@@ -163,6 +173,11 @@ def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = N
     reuse_chunk_buffers()
     results = []
     cases = [(m, r, p) for m in args.channels for r in args.taps_per_branch for p in args.oversample]
+    skipped = sorted({(m, p) for m, _, p in cases if m % p})
+    if len(skipped) == len({(m, p) for m, _, p in cases}):
+        print(f"bandloom bench: no case to measure: M/D must divide M ({', '.join(f'M/D = {p} for M = {m}' for m, p in skipped)})",
+              file=sys.stderr)
+        return 2
     for i, (m, r, p) in enumerate(cases):
         if m % p:
             continue
@@ -186,6 +201,8 @@ def run(args: Namespace, out: TextIO, progress: Callable[[str], None] | None = N
             row.append(round(r["thread_speedup"], 2))
     out.write(render_rows(headers, rows) + "\n")
     out.write("Ratios are bank time over a bare scipy.fft of the same frames, same run, one core.\n")
+    if skipped:
+        out.write("Not measured (M/D must divide M): " + ", ".join(f"M = {m}, M/D = {p}" for m, p in skipped) + ".\n")
     if args.threads > 1:
         out.write(f"'{args.threads} threads / 1': throughput of analysis then synthesis with threads = {args.threads} "
                   f"over one thread, same chunks, same run (identical output).\n")

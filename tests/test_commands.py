@@ -36,12 +36,19 @@ def test_design_saves_taps_as_npy_and_text(tmp_path, capsys):
     (["design", "--channels", "16", "--shape", "low-pass", "--rolloff", "0.3"],
      "Parameter rolloff=0.3 applies to shape='root-raised-cosine' only!"),
     (["design", "--channels", "16", "--window", "nonesuch"], "window='nonesuch'"),
+    (["design", "--channels", "1" + "0" * 400], "Parameter channels=<a number of 401 digits> is more than 262144!"),
+    (["bench", "--channels", "0"], "argument --channels: '0' is not a whole number from 2 to 65536"),
+    (["bench", "--chunk", "0"], "argument --chunk: '0' is not a whole number from 1 to 67108864"),
+    (["bench", "--samples", "-1"], "argument --samples: '-1' is not a whole number from 1 to 1073741824"),
+    (["bench", "--channels", "64", "--oversample", "3"], "no case to measure: M/D must divide M (M/D = 3 for M = 64)"),
 ])
-def test_design_errors_are_one_line(argv, message):
-    """Bad knobs give 'bandloom design: error: ...' and exit 2, never a traceback."""
-    done = bandloom(*argv)
+def test_design_and_bench_errors_are_one_line(argv, message):
+    """Bad knobs give 'bandloom design: error: ...' (or bench's) and exit 2, never a traceback. (bench
+    --channels 0 raised ZeroDivisionError, --chunk 0 looped for ever, a 401-digit M met numpy's size error.)"""
+    done = bandloom(*argv, timeout=60)
     assert done.returncode == 2
-    assert done.stderr.startswith("bandloom design: error: ") and message in done.stderr
+    last = done.stderr.strip().splitlines()[-1]         # (argparse prints its usage lines first)
+    assert last.startswith(f"bandloom {argv[0]}: ") and message in last, done.stderr
     assert "Traceback" not in done.stderr
 
 

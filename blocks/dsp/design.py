@@ -49,11 +49,16 @@ from .frames import RoundTrip, frame_bounds, round_trip_transfer, tight_window
 
 __all__ = [
     "BankDesign", "DEFAULT_CRITICAL_STOPBAND_DB", "DEFAULT_CRITICAL_TAPS_PER_BRANCH", "DEFAULT_ROLLOFF",
-    "DEFAULT_STOPBAND_DB", "DEFAULT_TAPS_PER_BRANCH", "DEFAULT_TIGHT_MARGIN", "SHAPES", "design_bank",
-    "root_raised_cosine"
+    "DEFAULT_STOPBAND_DB", "DEFAULT_TAPS_PER_BRANCH", "DEFAULT_TIGHT_MARGIN", "MAX_DESIGN_CHANNELS", "SHAPES",
+    "design_bank", "root_raised_cosine"
 ]
 
 SHAPES = ("root-raised-cosine", "low-pass", "rectangle")
+
+#: The most channels a design is made for: 2^18, far past any flow's channelizer (the flow parameters
+#: have their own limit); the default design at 2^18 took 11 s on the development machine. Without a
+#: limit, a huge count met numpy's "maximum allowed size" error, which named no parameter.
+MAX_DESIGN_CHANNELS = 1 << 18
 
 DEFAULT_TAPS_PER_BRANCH = 16
 DEFAULT_ROLLOFF = 0.5
@@ -227,6 +232,9 @@ def design_bank(channels: int, decimation: int | None = None, *, oversample: int
     """
     if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or channels < 2:
         raise ParameterError(f"Parameter channels={channels!r} is not an integer >= 2!", param="channels")
+    if channels > MAX_DESIGN_CHANNELS:
+        shown = channels if channels < 10**20 else f"<a number of {len(str(channels))} digits>"
+        raise ParameterError(f"Parameter channels={shown} is more than {MAX_DESIGN_CHANNELS}!", param="channels")
     if decimation is not None and oversample is not None:
         raise ParameterError("Give decimation or oversample, not both!", param="decimation")
     if decimation is None:
