@@ -15,7 +15,7 @@ from __future__ import annotations
 import json
 import sys
 import time
-from argparse import ArgumentParser, ArgumentTypeError, Namespace
+from argparse import ArgumentParser, Namespace
 from collections.abc import Callable
 from typing import Any, TextIO
 
@@ -23,43 +23,20 @@ import numpy as np
 from bandloom.blocks.text_tables import render_rows
 
 from ._memory import reuse_chunk_buffers
+from .arguments import whole_number, whole_numbers
 
 __all__ = ["add_arguments", "measure_case", "run"]
 
 
-def _whole_number(low: int, high: int) -> Callable[[str], int]:
-    def convert(text: str) -> int:
-        try:
-            value = int(text)
-        except ValueError:
-            value = low - 1
-        if not low <= value <= high:
-            raise ArgumentTypeError(f"{text!r} is not a whole number from {low} to {high}")
-        return value
-    return convert
-
-
-def _whole_numbers(low: int, high: int) -> Callable[[str], list[int]]:
-    """A comma list of whole numbers, each from ``low`` to ``high``."""
-    one = _whole_number(low, high)
-
-    def convert(text: str) -> list[int]:
-        values = [one(v.strip()) for v in text.split(",") if v.strip()]
-        if not values:
-            raise ArgumentTypeError(f"{text!r} lists no number")
-        return values
-    return convert
-
-
 def add_arguments(parser: ArgumentParser) -> None:
-    parser.add_argument("--channels", type=_whole_numbers(2, 1 << 16), default=[64, 1024, 4096],
+    parser.add_argument("--channels", type=whole_numbers(2, 1 << 16), default=[64, 1024, 4096],
                         help="comma list of M")
-    parser.add_argument("--taps-per-branch", type=_whole_numbers(1, 256), default=[4, 8, 16], help="comma list of R")
-    parser.add_argument("--oversample", type=_whole_numbers(1, 1 << 16), default=[1, 2], help="comma list of M/D")
-    parser.add_argument("--samples", type=_whole_number(1, 1 << 30), default=1 << 21, help="input samples per case")
-    parser.add_argument("--chunk", type=_whole_number(1, 1 << 26), default=1 << 16, help="samples per process() call")
-    parser.add_argument("--repeats", type=_whole_number(1, 1000), default=5, help="best of this many runs")
-    parser.add_argument("--threads", type=_whole_number(1, 64), default=1, help="also time both banks with this many threads "
+    parser.add_argument("--taps-per-branch", type=whole_numbers(1, 256), default=[4, 8, 16], help="comma list of R")
+    parser.add_argument("--oversample", type=whole_numbers(1, 1 << 16), default=[1, 2], help="comma list of M/D")
+    parser.add_argument("--samples", type=whole_number(1, 1 << 30), default=1 << 21, help="input samples per case")
+    parser.add_argument("--chunk", type=whole_number(1, 1 << 26), default=1 << 16, help="samples per process() call")
+    parser.add_argument("--repeats", type=whole_number(1, 1000), default=5, help="best of this many runs")
+    parser.add_argument("--threads", type=whole_number(1, 64), default=1, help="also time both banks with this many threads "
                         "against one (they pay off with --chunk 262144 or more)")
     parser.add_argument("--json", action="store_true", help="print the results as JSON")
     flows = parser.add_argument_group("a whole flow (docs/performance.md)")
@@ -67,9 +44,9 @@ def add_arguments(parser: ArgumentParser) -> None:
                        "ratio to its channelizer in process, busy fraction per block, bytes per link")
     flows.add_argument("--set", action="append", default=[], metavar="BLOCK.KEY=VALUE",
                        help="with --flow: override a block parameter, as for 'bandloom run'")
-    flows.add_argument("--lengthen", type=_whole_number(2, 1000), default=4, help="with --flow: the long run is "
+    flows.add_argument("--lengthen", type=whole_number(2, 1000), default=4, help="with --flow: the long run is "
                        "this many times the short one (2 to 1000; default 4)")
-    flows.add_argument("--runs", type=_whole_number(1, 20), default=2, help="with --flow: runs of each length, the "
+    flows.add_argument("--runs", type=whole_number(1, 20), default=2, help="with --flow: runs of each length, the "
                        "fastest counts (1 to 20; default 2)")
 
 

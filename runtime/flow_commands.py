@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
-import math
 import signal
 import sys
 from pathlib import Path
@@ -15,6 +14,7 @@ from bandloom.blocks.block import REQUIRED, Param, toml_repr
 from bandloom.blocks.text_tables import render_rows
 from bandloom.blocks.units import format_frequency
 
+from .arguments import number_between
 from .cli import Interrupted
 from .flow import Flow, FlowErrors, format_key_path, load_flow, process_groups
 from .flow.declarations import BLOCK_OPTIONS
@@ -147,30 +147,14 @@ def add_run_arguments(parser: argparse.ArgumentParser) -> None:
                         "([hosts.NAME] in the file); every host runs the same file with its own name")
     parser.add_argument("--one-machine", action="store_true", help="run every block of a flow placed on several "
                         "hosts here, on this one machine (links stay local), to try the flow before placing it")
-    parser.add_argument("--wait-for-hosts", type=_wait_time, default=WAIT_FOR_HOSTS, metavar="SECONDS",
+    parser.add_argument("--wait-for-hosts", type=number_between(1, 86400, "seconds"), default=WAIT_FOR_HOSTS,
+                        metavar="SECONDS",
                         help=f"with --host: how long to wait for the other hosts' shares before giving up, naming "
                              f"those missing (default {WAIT_FOR_HOSTS:g})")
-    parser.add_argument("--drain-time", type=_drain_time, default=DRAIN_SECONDS, metavar="SECONDS",
+    parser.add_argument("--drain-time", type=number_between(0, 3600, "seconds"), default=DRAIN_SECONDS,
+                        metavar="SECONDS",
                         help=f"after Ctrl-C, wait this long for the flow to drain before aborting it (what is "
                              f"still queued then is counted as lost; default {DRAIN_SECONDS:g})")
-
-
-def _seconds(text: str, low: float, high: float) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not low <= value <= high:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds from {low:g} to {high:g}")
-    return value
-
-
-def _drain_time(text: str) -> float:
-    return _seconds(text, 0, 3600)
-
-
-def _wait_time(text: str) -> float:
-    return _seconds(text, 1, 86400)
 
 
 def _share_problem(args: argparse.Namespace, flow: Flow) -> str | None:

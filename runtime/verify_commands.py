@@ -29,6 +29,7 @@ from bandloom.blocks.dsp.verification import (
 )
 from bandloom.blocks.text_tables import render_rows
 
+from .arguments import number_between, whole_number
 from .design_command import add_design_arguments, design_from_args
 from .flow import FlowErrors, check_flow, load_flow
 from .plugins import load_registry
@@ -49,15 +50,16 @@ def _common(parser: ArgumentParser) -> None:
 
 def add_roundtrip_arguments(parser: ArgumentParser) -> None:
     _common(parser)
-    parser.add_argument("--threshold", type=float, default=-100.0,
+    parser.add_argument("--threshold", type=number_between(-400, 0, "dB"), default=-100.0,
                         help="PASS when every signal's error is at or below this, dB (default -100)")
     parser.add_argument("--signals", default=",".join(SIGNALS), help=f"comma list of {', '.join(SIGNALS)}")
-    parser.add_argument("--frames", type=int, default=64, help="length of each test signal in frames of M")
+    parser.add_argument("--frames", type=whole_number(1, 4096), default=64,
+                        help="length of each test signal in frames of M (1 to 4096)")
 
 
 def add_quality_arguments(parser: ArgumentParser) -> None:
     _common(parser)
-    parser.add_argument("--steps", type=int, default=32, help="tones per channel spacing")
+    parser.add_argument("--steps", type=whole_number(1, 1024), default=32, help="tones per channel spacing (1 to 1024)")
 
 
 class _FlowBank:
@@ -175,6 +177,17 @@ def _why(result: SignalResult, design: BankDesign, judged: list[int] | None = No
     return k, level, f"{level - floor:.1f} dB above the design's predicted floor ({floor:.1f} dB): see the error spectrum (--plot)"
 
 
+#: The most samples of one test signal (--frames x M), and of tones x M for channel-quality: 16 Mi, well
+#: past what a figure needs, and within memory whatever M is (a signal is complex128 here).
+MAX_TEST_SAMPLES = 1 << 24
+
+
+def _check_size(option: str, value: int, channels: int) -> None:
+    if value * channels > MAX_TEST_SAMPLES:
+        raise ValueError(f"{option} {value} x M = {channels} channels is {value * channels}, more than "
+                         f"{MAX_TEST_SAMPLES}; give at most {max(1, MAX_TEST_SAMPLES // channels)}")
+
+
 def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> int:
     log = log or sys.stderr
     target = _target(args)
@@ -185,6 +198,7 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
     processes = None
     if target is None:
         design = design_from_args(args)
+        _check_size("--frames", args.frames, design.channels)
         label = f"design M={design.channels} D={design.decimation} ({design.shape})"
         results = []
         for number, signal in enumerate(signals, 1):
@@ -194,6 +208,7 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
         where = "in process"
     else:
         design = target.design
+        _check_size("--frames", args.frames, design.channels)
         label = target.label
         progress(f"roundtrip: {', '.join(signals)} through the flow's blocks as processes")
         with tempfile.TemporaryDirectory(prefix="bandloom-roundtrip-") as folder:
@@ -260,6 +275,7 @@ def run_quality(args: Namespace, out: TextIO, log: TextIO | None = None) -> int:
     target = _target(args)
     design = target.design if target else design_from_args(args)
     label = target.label if target else f"design M={design.channels} D={design.decimation} ({design.shape})"
+    _check_size("--steps", args.steps, design.channels)
     measured = measure_channel_response(design.analysis_bank, design.channels, steps_per_spacing=args.steps)
     got = measured.figures(design.passband_edge)
     computed = design.response

@@ -41,10 +41,17 @@ def test_design_saves_taps_as_npy_and_text(tmp_path, capsys):
     (["bench", "--chunk", "0"], "argument --chunk: '0' is not a whole number from 1 to 67108864"),
     (["bench", "--samples", "-1"], "argument --samples: '-1' is not a whole number from 1 to 1073741824"),
     (["bench", "--channels", "64", "--oversample", "3"], "no case to measure: M/D must divide M (M/D = 3 for M = 64)"),
+    (["roundtrip", "--channels", "16", "--frames", "-3"], "argument --frames: '-3' is not a whole number from 1 to 4096"),
+    (["roundtrip", "--channels", "16", "--threshold", "nan"], "argument --threshold: 'nan' is not a number of dB"),
+    (["roundtrip", "--channels", "8192", "--frames", "4096"], "--frames 4096 x M = 8192 channels is 33554432, more than "
+     "16777216; give at most 2048"),
+    (["channel-quality", "--channels", "16", "--steps", "0"], "argument --steps: '0' is not a whole number from 1 to 1024"),
+    (["run", "flow.toml", "--drain-time", "-1"], "argument --drain-time: '-1' is not a number of seconds from 0 to 3600"),
 ])
 def test_design_and_bench_errors_are_one_line(argv, message):
-    """Bad knobs give 'bandloom design: error: ...' (or bench's) and exit 2, never a traceback. (bench
-    --channels 0 raised ZeroDivisionError, --chunk 0 looped for ever, a 401-digit M met numpy's size error.)"""
+    """Bad knobs give 'bandloom COMMAND: error: ...' and exit 2, never a traceback. (bench --channels 0 raised
+    ZeroDivisionError, --chunk 0 looped for ever, a 401-digit M met numpy's size error; roundtrip ran with
+    -3 frames, judged against a nan threshold, and ran out of memory at 10^12 frames.)"""
     done = bandloom(*argv, timeout=60)
     assert done.returncode == 2
     last = done.stderr.strip().splitlines()[-1]         # (argparse prints its usage lines first)

@@ -11,7 +11,7 @@ MODULES = [
     "bandloom.blocks.text_tables", "bandloom.runtime.control", "bandloom.runtime.worker_spec", "bandloom.runtime.flow.problems",
     "bandloom.runtime.flow.locator", "bandloom.runtime.flow.selection", "bandloom.runtime.flow.graph",
     "bandloom.runtime.shared_rings", "bandloom.runtime.links", "bandloom.runtime.shares", "bandloom.runtime.verify_commands",
-    "bandloom.runtime.wire",
+    "bandloom.runtime.wire", "bandloom.runtime.arguments",
 ]
 
 
