@@ -101,7 +101,7 @@ def _json_text(value: object) -> str:
     """A JSON value as a message shows it: containers summarised, text shortened, absence said."""
     if isinstance(value, (list, dict)):
         return f"a JSON {'array' if isinstance(value, list) else 'object'} of {len(value)} items"
-    return "nothing" if value is None else shortened(toml_repr(value))
+    return "nothing" if value is None else toml_repr(value)
 
 
 def write_sigmf(data_path: Path, *, datatype: str, sample_rate: float, frequency: float, start_time: str | None,

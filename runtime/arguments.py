@@ -17,6 +17,8 @@ import math
 from argparse import ArgumentTypeError
 from collections.abc import Callable
 
+from bandloom.blocks.params import shortened
+
 __all__ = ["number_between", "whole_number", "whole_numbers"]
 
 
@@ -59,4 +61,4 @@ def number_between(low: float, high: float, unit: str) -> Callable[[str], float]
 
 
 def _shown(text: str) -> str:
-    return repr(text) if len(text) <= 40 else f"{text[:20]!r}... ({len(text)} characters)"
+    return repr(shortened(text, 40))

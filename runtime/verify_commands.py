@@ -196,9 +196,9 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
         if s not in SIGNALS:
             raise ValueError(f"--signals: {s!r} is not one of {', '.join(SIGNALS)}")
     processes = None
+    design = design_from_args(args) if target is None else target.design
+    _check_size("--frames", args.frames, design.channels)
     if target is None:
-        design = design_from_args(args)
-        _check_size("--frames", args.frames, design.channels)
         label = f"design M={design.channels} D={design.decimation} ({design.shape})"
         results = []
         for number, signal in enumerate(signals, 1):
@@ -207,8 +207,6 @@ def run_roundtrip(args: Namespace, out: TextIO, log: TextIO | None = None) -> in
         progress("")
         where = "in process"
     else:
-        design = target.design
-        _check_size("--frames", args.frames, design.channels)
         label = target.label
         progress(f"roundtrip: {', '.join(signals)} through the flow's blocks as processes")
         with tempfile.TemporaryDirectory(prefix="bandloom-roundtrip-") as folder:
